@@ -1,0 +1,373 @@
+"""The compiler: a Plan becomes ONE query, built as a sqlglot syntax tree.
+
+Stages (CTEs):
+  first_exposure  each unit's first exposure inside the experiment, its variant and
+                  how many distinct variants it saw
+  sessions        events joined to first exposures (inside the analysis window),
+                  grouped once per (unit, session): every metric's session-level part,
+                  the bot rules' inputs and, for dwell metrics, click/back time lists
+  units           one row per unit holding every metric's per-unit value
+  classified      per-unit bot verdict and contamination flag; final metric columns
+  (final select)  per-variant sufficient statistics with centred aggregates
+
+The query reads two views, ``events`` and ``exposures``, that the engine registers.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from dataclasses import dataclass
+
+import sqlglot.expressions as exp
+
+from metricforge.compile.expressions import qualify
+from metricforge.spec.model import BotRule, Kind, MetricDef, Plan, RuleKind
+
+EXACT = exp.DataType.build("DECIMAL(38, 10)")
+DOUBLE = exp.DataType.build("DOUBLE")
+BIGINT = exp.DataType.build("BIGINT")
+
+
+@dataclass(frozen=True)
+class MetricColumns:
+    """Names of a metric's columns in the final result."""
+
+    n: str
+    mean_x: str
+    var_x: str
+    mean_y: str | None = None
+    var_y: str | None = None
+    cov_xy: str | None = None
+
+
+def result_columns(metric: MetricDef) -> MetricColumns:
+    base = metric.name
+    if metric.is_ratio:
+        return MetricColumns(
+            f"{base}__n",
+            f"{base}__mean_x",
+            f"{base}__var_x",
+            f"{base}__mean_y",
+            f"{base}__var_y",
+            f"{base}__cov_xy",
+        )
+    return MetricColumns(f"{base}__n", f"{base}__mean_x", f"{base}__var_x")
+
+
+def _col(name: str, table: str | None = None) -> exp.Column:
+    return exp.column(name, table=table)
+
+
+def _lit(value: str | int | float) -> exp.Expression:
+    if isinstance(value, str):
+        return exp.Literal.string(value)
+    return exp.Literal.number(value)
+
+
+def _ts(value: dt.datetime) -> exp.Expression:
+    return exp.cast(exp.Literal.string(value.isoformat(sep=" ")), "TIMESTAMP")
+
+
+def _case(
+    cond: exp.Expression, then: exp.Expression, default: exp.Expression | None = None
+) -> exp.Case:
+    case = exp.Case().when(cond, then)
+    return case.else_(default) if default is not None else case
+
+
+def _and(*parts: exp.Expression | None) -> exp.Expression:
+    kept = [p for p in parts if p is not None]
+    return exp.and_(*kept) if kept else exp.true()
+
+
+def _event_condition(metric: MetricDef, events: str) -> exp.Expression:
+    kinds: exp.Expression | None = None
+    if metric.events:
+        kinds = _col("event", events).isin(*[_lit(e) for e in metric.events])
+    where = exp.paren(qualify(metric.where, events)) if metric.where is not None else None
+    return _and(kinds, where)
+
+
+class _Builder:
+    def __init__(self, plan: Plan, dialect: str) -> None:
+        self.plan = plan
+        self.spec = plan.spec
+        self.ordered = dialect == "duckdb"  # ordered aggregates make the result bit-stable
+
+    # -- stage 1 -------------------------------------------------------------------------
+    def first_exposure(self) -> exp.Select:
+        x = "x"
+        return (
+            exp.select(
+                exp.alias_(_col("unit_id", x), "unit"),
+                exp.alias_(exp.Min(this=_col("ts", x)), "first_ts"),
+                exp.alias_(exp.Min(this=_col("variant", x)), "variant"),
+                exp.alias_(
+                    exp.Count(this=exp.Distinct(expressions=[_col("variant", x)])), "n_variants"
+                ),
+            )
+            .from_(exp.alias_(exp.to_table("exposures"), x, table=True))
+            .where(
+                _and(
+                    _col("experiment", x).eq(_lit(self.spec.name)),
+                    _col("unit_id", x).is_(exp.null()).not_(),
+                    _col("variant", x).is_(exp.null()).not_(),
+                    _col("ts", x) >= _ts(self.spec.start),
+                    _col("ts", x) < _ts(self.spec.end),
+                )
+            )
+            .group_by(_col("unit_id", x))
+        )
+
+    # -- stage 2 -------------------------------------------------------------------------
+    def sessions(self) -> exp.Select:
+        e, f = "e", "f"
+        window = exp.Interval(this=_lit(str(self.spec.window_days)), unit=exp.var("DAY"))
+        last = self.spec.end + dt.timedelta(days=self.spec.window_days)
+        join_on = _and(
+            _col(self.spec.unit, e).eq(_col("unit", f)),
+            _col("ts", e) >= _col("first_ts", f),
+            _col("ts", e) < exp.Add(this=_col("first_ts", f), expression=window),
+            _col("ts", e) >= _ts(self.spec.start),
+            _col("ts", e) < _ts(last),
+        )
+        select = exp.select(
+            _col("unit", f),
+            _col("variant", f),
+            _col("n_variants", f),
+            exp.alias_(_col("session_id", e), "session"),
+            exp.alias_(exp.Count(this=_col("ts", e)), "n_events"),
+        )
+        for i, rule in enumerate(self.plan.bot_filter.rules):
+            flag = self._rule_flag(rule, e)
+            if flag is not None:
+                select = select.select(
+                    exp.alias_(exp.Max(this=_case(flag, _lit(1), _lit(0))), f"bot_rule_{i}")
+                )
+        for metric in self.plan.metrics:
+            select = select.select(*self._session_parts(metric, e))
+        return (
+            select.from_(exp.alias_(exp.to_table("first_exposure"), f, table=True))
+            .join(exp.alias_(exp.to_table("events"), e, table=True), on=join_on, join_type="left")
+            .group_by(
+                _col("unit", f), _col("variant", f), _col("n_variants", f), _col("session_id", e)
+            )
+        )
+
+    def _rule_flag(self, rule: BotRule, e: str) -> exp.Expression | None:
+        if rule.kind is RuleKind.USER_AGENT:
+            ua = exp.Lower(this=_col("user_agent", e))
+            hits = [exp.StrPosition(this=ua, substr=_lit(t)) > _lit(0) for t in rule.tokens]
+            return exp.or_(*hits)
+        if rule.kind is RuleKind.DENY_IP:
+            return _col("ip_hash", e).isin(*[_lit(t) for t in rule.tokens])
+        return None  # unit-level rules are applied in `classified`
+
+    def _session_parts(self, metric: MetricDef, e: str) -> list[exp.Expression]:
+        s = f"s_{metric.name}"
+        cond = _event_condition(metric, e)
+        if metric.kind in (Kind.COUNT, Kind.PROPORTION):
+            return [exp.alias_(exp.Count(this=_case(cond, _lit(1))), s)]
+        if metric.kind in (Kind.SUM, Kind.MEAN):
+            assert metric.value is not None
+            value = exp.cast(qualify(metric.value, e), EXACT)
+            parts: list[exp.Expression] = [exp.alias_(exp.Sum(this=_case(cond, value)), s)]
+            if metric.kind is Kind.MEAN:
+                has = _and(cond, qualify(metric.value, e).is_(exp.null()).not_())
+                parts.append(exp.alias_(exp.Count(this=_case(has, _lit(1))), f"c_{metric.name}"))
+            return parts
+        if metric.kind is Kind.DWELL_SUCCESS:
+            return [exp.alias_(self._dwell_success(metric, e), s)]
+        return []  # ratio and composite are built from other metrics' per-unit columns
+
+    def _dwell_success(self, metric: MetricDef, e: str) -> exp.Expression:
+        """1 when the session has a click with no back within the threshold after it."""
+        where = qualify(metric.where, e) if metric.where is not None else None
+
+        def times(event: str) -> tuple[exp.Expression, exp.Expression]:
+            cond = _and(_col("event", e).eq(_lit(event)), where)
+            listed = exp.Filter(
+                this=exp.ArrayAgg(this=exp.UnixMillis(this=_col("ts", e))),
+                expression=exp.Where(this=cond),
+            )
+            return listed, exp.Count(this=_case(cond, _lit(1)))
+
+        clicks, n_clicks = times("click")
+        backs, n_backs = times("back")
+        c, b = exp.to_identifier("c"), exp.to_identifier("b")
+        threshold = _lit(int(round(metric.threshold_s * 1000)))
+        quick_back = exp.ArrayFilter(
+            this=backs,
+            expression=exp.Lambda(
+                this=_and(
+                    exp.column(b) > exp.column(c),
+                    exp.column(b) <= exp.Add(this=exp.column(c), expression=threshold),
+                ),
+                expressions=[b],
+            ),
+        )
+        good_clicks = exp.ArrayFilter(
+            this=clicks,
+            expression=exp.Lambda(this=exp.ArraySize(this=quick_back).eq(_lit(0)), expressions=[c]),
+        )
+        # Empty lists are NULL in some engines: decide by counts first.
+        return (
+            exp.Case()
+            .when(n_clicks.eq(_lit(0)), _lit(0))
+            .when(n_backs.eq(_lit(0)), _lit(1))
+            .when(exp.ArraySize(this=good_clicks) > _lit(0), _lit(1))
+            .else_(_lit(0))
+        )
+
+    # -- stage 3 -------------------------------------------------------------------------
+    def units(self) -> exp.Select:
+        select = exp.select(
+            _col("unit"),
+            _col("variant"),
+            _col("n_variants"),
+            exp.alias_(exp.cast(exp.Sum(this=_col("n_events")), BIGINT), "n_events"),
+            exp.alias_(exp.Max(this=_col("n_events")), "max_session_events"),
+            exp.alias_(exp.Count(this=_col("session")), "n_sessions"),
+        )
+        for i, rule in enumerate(self.plan.bot_filter.rules):
+            if rule.kind in (RuleKind.USER_AGENT, RuleKind.DENY_IP):
+                select = select.select(
+                    exp.alias_(exp.Max(this=_col(f"bot_rule_{i}")), f"bot_rule_{i}")
+                )
+        for metric in self.plan.metrics:
+            select = select.select(*self._unit_parts(metric))
+        return select.from_("sessions").group_by(_col("unit"), _col("variant"), _col("n_variants"))
+
+    def _unit_parts(self, metric: MetricDef) -> list[exp.Expression]:
+        s, u = _col(f"s_{metric.name}"), f"u_{metric.name}"
+        total = exp.Coalesce(this=exp.Sum(this=s), expressions=[_lit(0)])
+        if metric.kind is Kind.COUNT:
+            return [exp.alias_(exp.cast(total, BIGINT), u)]
+        if metric.kind is Kind.SUM:
+            return [exp.alias_(exp.cast(total, DOUBLE), u)]
+        if metric.kind is Kind.PROPORTION:
+            return [exp.alias_(_case(total > _lit(0), _lit(1), _lit(0)), u)]
+        if metric.kind is Kind.MEAN:
+            count = exp.Sum(this=_col(f"c_{metric.name}"))
+            mean = exp.Div(
+                this=exp.cast(exp.Sum(this=s), DOUBLE), expression=exp.cast(count, DOUBLE)
+            )
+            return [exp.alias_(_case(count > _lit(0), mean), u)]
+        if metric.kind is Kind.DWELL_SUCCESS:
+            return [
+                exp.alias_(exp.cast(total, BIGINT), u),
+                exp.alias_(exp.Count(this=_col("session")), f"d_{metric.name}"),
+            ]
+        return []
+
+    # -- stage 4 -------------------------------------------------------------------------
+    def _per_unit(self, name: str) -> exp.Expression:
+        """A per-unit metric's value as a DOUBLE expression over the `units` columns."""
+        metric = self.plan.metric(name)
+        if metric.kind is Kind.COMPOSITE:
+            terms = [
+                exp.Mul(
+                    this=exp.cast(exp.Literal.number(repr(float(w))), DOUBLE),
+                    expression=self._per_unit(t),
+                )
+                for t, w in metric.terms
+            ]
+            total = terms[0]
+            for term in terms[1:]:
+                total = exp.Add(this=total, expression=term)
+            return exp.paren(total)
+        return exp.cast(_col(f"u_{name}"), DOUBLE)
+
+    def classified(self) -> exp.Select:
+        flags: list[exp.Expression] = []
+        for i, rule in enumerate(self.plan.bot_filter.rules):
+            if rule.kind in (RuleKind.USER_AGENT, RuleKind.DENY_IP):
+                flags.append(_col(f"bot_rule_{i}").eq(_lit(1)))
+            elif rule.kind is RuleKind.SESSION_EVENTS:
+                flags.append(_col("max_session_events") > _lit(rule.max_events))
+            elif rule.kind is RuleKind.DENY_UNIT:
+                flags.append(_col("unit").isin(*[_lit(t) for t in rule.tokens]))
+        is_bot = exp.paren(exp.or_(*flags)) if flags else exp.false()
+        select = exp.select(
+            _col("unit"),
+            _col("variant"),
+            _col("n_events"),
+            exp.alias_(is_bot, "is_bot"),
+            exp.alias_(_col("n_variants") > _lit(1), "contaminated"),
+        )
+        for metric in self.plan.metrics:
+            if metric.kind is Kind.RATIO:
+                assert metric.numerator and metric.denominator
+                x, y = self._per_unit(metric.numerator), self._per_unit(metric.denominator)
+            elif metric.kind is Kind.DWELL_SUCCESS:
+                x = exp.cast(_col(f"u_{metric.name}"), DOUBLE)
+                y = exp.cast(_col(f"d_{metric.name}"), DOUBLE)
+            else:
+                x, y = self._per_unit(metric.name), None
+            select = select.select(exp.alias_(x, f"x_{metric.name}"))
+            if y is not None:
+                select = select.select(exp.alias_(y, f"y_{metric.name}"))
+        return select.from_("units")
+
+    # -- stage 5 -------------------------------------------------------------------------
+    def _agg(self, cls: type[exp.Func], col: str, other: str | None = None) -> exp.Expression:
+        this: exp.Expression = _col(col)
+        if self.ordered and other is None:
+            this = exp.Order(this=this, expressions=[exp.Ordered(this=_col("unit"))])
+        if other is not None:
+            second: exp.Expression = _col(other)
+            if self.ordered:
+                second = exp.Order(this=second, expressions=[exp.Ordered(this=_col("unit"))])
+            return cls(this=this, expression=second)
+        return cls(this=this)
+
+    def moments(self) -> exp.Select:
+        select = exp.select(
+            _col("variant"),
+            _col("is_bot"),
+            _col("contaminated"),
+            exp.alias_(exp.Count(this=exp.Star()), "n_units"),
+            exp.alias_(exp.cast(exp.Sum(this=_col("n_events")), BIGINT), "n_events"),
+        )
+        for metric in self.plan.metrics:
+            if metric.kind in (Kind.COMPOSITE, Kind.COUNT, Kind.SUM, Kind.PROPORTION) and not any(
+                metric.name == name for name, _ in self.plan.reported
+            ):
+                continue  # only needed as a part of another metric
+            cols = result_columns(metric)
+            x = f"x_{metric.name}"
+            select = select.select(
+                exp.alias_(exp.Count(this=_col(x)), cols.n),
+                exp.alias_(self._agg(exp.Avg, x), cols.mean_x),
+                exp.alias_(self._agg(exp.Variance, x), cols.var_x),
+            )
+            if metric.is_ratio:
+                y = f"y_{metric.name}"
+                assert cols.mean_y and cols.var_y and cols.cov_xy
+                select = select.select(
+                    exp.alias_(self._agg(exp.Avg, y), cols.mean_y),
+                    exp.alias_(self._agg(exp.Variance, y), cols.var_y),
+                    exp.alias_(self._agg(exp.CovarSamp, x, y), cols.cov_xy),
+                )
+        keys = [_col("variant"), _col("is_bot"), _col("contaminated")]
+        return select.from_("classified").group_by(*keys).order_by(*keys)
+
+    def build(self) -> exp.Select:
+        query = self.moments()
+        for name, cte in (
+            ("first_exposure", self.first_exposure()),
+            ("sessions", self.sessions()),
+            ("units", self.units()),
+            ("classified", self.classified()),
+        ):
+            query = query.with_(name, as_=cte)
+        return query
+
+
+def compile_plan(plan: Plan, dialect: str = "duckdb") -> exp.Select:
+    """The one query of a run, as a sqlglot tree for ``dialect`` (duckdb or spark)."""
+    return _Builder(plan, dialect).build()
+
+
+def render(plan: Plan, dialect: str = "duckdb", *, pretty: bool = True) -> str:
+    return compile_plan(plan, dialect).sql(dialect=dialect, pretty=pretty)

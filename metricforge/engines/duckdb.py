@@ -1,0 +1,89 @@
+"""The embedded default engine: DuckDB, locked down before any compiled query runs."""
+
+from __future__ import annotations
+
+import tempfile
+from pathlib import Path
+
+import duckdb
+import pyarrow as pa
+import sqlglot.expressions as exp
+
+from metricforge.engines.base import EngineInputs
+from metricforge.errors import EngineError
+
+DEFAULT_MEMORY_LIMIT = "4GB"
+
+
+def _set(name: str, value: exp.Expression) -> str:
+    item = exp.SetItem(this=exp.EQ(this=exp.column(name), expression=value))
+    return exp.Set(expressions=[item]).sql(dialect="duckdb")
+
+
+class DuckDBEngine:
+    name = "duckdb"
+    dialect = "duckdb"
+
+    def __init__(
+        self,
+        *,
+        threads: int | None = None,
+        memory_limit: str = DEFAULT_MEMORY_LIMIT,
+        temp_dir: Path | None = None,
+    ) -> None:
+        self.threads = threads
+        self.memory_limit = memory_limit
+        self.temp_dir = temp_dir
+
+    def version(self) -> str:
+        return str(duckdb.__version__)
+
+    def _connect(self, inputs: EngineInputs, temp_dir: Path) -> duckdb.DuckDBPyConnection:
+        config: dict[str, str | bool | int] = {
+            "autoinstall_known_extensions": False,
+            "autoload_known_extensions": False,
+            "memory_limit": self.memory_limit,
+            "temp_directory": str(temp_dir),
+        }
+        if self.threads:
+            config["threads"] = self.threads
+        con = duckdb.connect(":memory:", config=config)
+        folders = sorted({str(p.resolve().parent) + "/" for p in inputs.events + inputs.exposures})
+        folders.append(str(temp_dir.resolve()) + "/")
+        con.execute(
+            _set(
+                "allowed_directories",
+                exp.Array(expressions=[exp.Literal.string(f) for f in folders]),
+            )
+        )
+        con.execute(_set("enable_external_access", exp.false()))
+        con.execute(_set("lock_configuration", exp.true()))
+        events = con.read_parquet(
+            [str(p) for p in inputs.events], hive_partitioning=inputs.hive, union_by_name=True
+        )
+        events.select(*[duckdb.ColumnExpression(c) for c in inputs.event_columns]).create_view(
+            "events"
+        )
+        exposures = con.read_parquet([str(p) for p in inputs.exposures], union_by_name=True)
+        exposures.select(
+            *[duckdb.ColumnExpression(c) for c in ("unit_id", "experiment", "variant", "ts")]
+        ).create_view("exposures")
+        return con
+
+    def run(self, query: exp.Select, inputs: EngineInputs) -> pa.Table:
+        if not isinstance(query, exp.Select):
+            raise EngineError("refusing to run anything but a single SELECT")
+        sql = query.sql(dialect=self.dialect)
+        with tempfile.TemporaryDirectory(prefix="metricforge-spill-", dir=self.temp_dir) as tmp:
+            try:
+                con = self._connect(inputs, Path(tmp))
+                try:
+                    relation = con.sql(sql)
+                    fetch = getattr(relation, "to_arrow_table", None) or relation.arrow
+                    table: pa.Table = fetch()
+                    return table
+                finally:
+                    con.close()
+            except duckdb.Error as err:
+                first = str(err).splitlines()[0]
+                raise EngineError(f"DuckDB failed: {first}") from None

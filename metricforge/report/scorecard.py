@@ -1,0 +1,185 @@
+"""The scorecard: one row per (metric, treatment variant), plus the trust checks."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Any
+
+import pyarrow as pa
+
+from metricforge.errors import StatsError
+from metricforge.runner import RunData
+from metricforge.stats import Effect, compare, ratio_point_and_variance, srm_test
+
+SCORECARD_SCHEMA = pa.schema(
+    [
+        ("experiment", pa.string()),
+        ("metric", pa.string()),
+        ("role", pa.string()),
+        ("kind", pa.string()),
+        ("direction", pa.string()),
+        ("variant", pa.string()),
+        ("control", pa.string()),
+        ("n_units", pa.int64()),
+        ("n_units_control", pa.int64()),
+        ("value", pa.float64()),
+        ("control_value", pa.float64()),
+        ("abs_effect", pa.float64()),
+        ("abs_ci_low", pa.float64()),
+        ("abs_ci_high", pa.float64()),
+        ("rel_effect", pa.float64()),
+        ("rel_ci_low", pa.float64()),
+        ("rel_ci_high", pa.float64()),
+        ("p_value", pa.float64()),
+        ("alpha", pa.float64()),
+        ("method", pa.string()),
+        ("unit_label", pa.string()),
+        ("bot_filter", pa.string()),
+        ("bot_filter_version", pa.int64()),
+        ("bot_filter_sha256", pa.string()),
+        ("definitions_sha256", pa.string()),
+        ("spec_sha256", pa.string()),
+        ("inputs_fingerprint", pa.string()),
+        ("tool_version", pa.string()),
+    ]
+)
+
+_EFFECT_FIELDS = (
+    "value",
+    "control_value",
+    "abs_effect",
+    "abs_ci_low",
+    "abs_ci_high",
+    "rel_effect",
+    "rel_ci_low",
+    "rel_ci_high",
+    "p_value",
+)
+
+
+@dataclass(frozen=True)
+class Scorecard:
+    rows: list[dict[str, Any]]
+    trust: dict[str, Any]
+    variants: list[dict[str, Any]]
+    stamp: dict[str, Any]
+
+    def table(self) -> pa.Table:
+        return pa.Table.from_pylist(self.rows, schema=SCORECARD_SCHEMA)
+
+    def as_json(self) -> dict[str, Any]:
+        return {
+            "trust": self.trust,
+            "experiment": self.stamp["experiment"],
+            "stamp": self.stamp,
+            "variants": self.variants,
+            "metrics": [_clean(r) for r in self.rows],
+        }
+
+
+def _clean(row: dict[str, Any]) -> dict[str, Any]:
+    return {
+        k: (None if isinstance(v, float) and not math.isfinite(v) else v) for k, v in row.items()
+    }
+
+
+def _effect_fields(data: RunData, metric: str, variant: str) -> tuple[dict[str, Any], str]:
+    moments = data.moments[metric]
+    control = data.plan.spec.control
+    try:
+        effect: Effect = compare(moments[variant], moments[control], alpha=data.plan.spec.alpha)
+    except StatsError as err:
+        fields: dict[str, Any] = {f: float("nan") for f in _EFFECT_FIELDS}
+        for name, v in (("value", variant), ("control_value", control)):
+            try:
+                fields[name] = ratio_point_and_variance(moments[v])[0]
+            except StatsError:
+                pass
+        return fields, f"not computed: {err.message}"
+    return {f: float(getattr(effect, f)) for f in _EFFECT_FIELDS}, effect.method
+
+
+def build(data: RunData) -> Scorecard:
+    spec = data.plan.spec
+    stamp = data.stamp.as_dict()
+    row_stamp = {
+        k: stamp[k]
+        for k in (
+            "bot_filter",
+            "bot_filter_version",
+            "bot_filter_sha256",
+            "definitions_sha256",
+            "spec_sha256",
+            "inputs_fingerprint",
+            "tool_version",
+        )
+    }
+    rows: list[dict[str, Any]] = []
+    for name, role in data.plan.reported:
+        metric = data.plan.metric(name)
+        for variant in spec.variant_names[1:]:
+            fields, method = _effect_fields(data, name, variant)
+            rows.append(
+                {
+                    "experiment": spec.name,
+                    "metric": name,
+                    "role": role.value,
+                    "kind": metric.kind.value,
+                    "direction": metric.direction.value,
+                    "variant": variant,
+                    "control": spec.control,
+                    "n_units": data.moments[name][variant].n,
+                    "n_units_control": data.moments[name][spec.control].n,
+                    **fields,
+                    "alpha": spec.alpha,
+                    "method": method,
+                    "unit_label": metric.unit_label,
+                    **row_stamp,
+                }
+            )
+    return Scorecard(
+        rows=rows, trust=trust_section(data), variants=variant_section(data), stamp=stamp
+    )
+
+
+def variant_section(data: RunData) -> list[dict[str, Any]]:
+    out = []
+    for variant, c in data.counts.items():
+        exposed = c.units + c.bot_units + c.contaminated_units
+        out.append(
+            {
+                "variant": variant,
+                "planned_share": dict(data.plan.spec.variants)[variant],
+                "units": c.units,
+                "events": c.events,
+                "bot_units": c.bot_units,
+                "bot_events": c.bot_events,
+                "bot_unit_share": c.bot_units / exposed if exposed else None,
+                "contaminated_units": c.contaminated_units,
+            }
+        )
+    return out
+
+
+def trust_section(data: RunData) -> dict[str, Any]:
+    spec = data.plan.spec
+    observed = [data.counts[v].units for v in spec.variant_names]
+    srm = srm_test(observed, [s for _, s in spec.variants])
+    checks = [
+        {
+            "check": "sample_ratio_mismatch",
+            "figure": f"chi2={srm.chi2:.4g}, df={srm.df}, p={srm.p_value:.4g}",
+            "p_value": srm.p_value,
+            "threshold": spec.srm_alpha,
+            "observed": dict(zip(spec.variant_names, observed, strict=True)),
+            "expected": dict(
+                zip(spec.variant_names, [round(e, 6) for e in srm.expected], strict=True)
+            ),
+            "passed": bool(srm.p_value >= spec.srm_alpha),
+        }
+    ]
+    return {
+        "verdict": "pass" if all(c["passed"] for c in checks) else "fail",
+        "checks": checks,
+    }

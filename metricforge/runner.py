@@ -1,0 +1,152 @@
+"""One run: plan → checked inputs → one query → sufficient statistics → scorecard."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import pyarrow as pa
+
+from metricforge.compile.query import compile_plan, result_columns
+from metricforge.engines.base import Engine, EngineInputs
+from metricforge.errors import InputDataError
+from metricforge.inputs import InputFile, check_columns, fingerprint, inspect, parquet_files
+from metricforge.provenance import Stamp, make_stamp
+from metricforge.schema import EVENT_COLUMNS, EXPOSURE_COLUMNS
+from metricforge.spec.model import Kind, MetricDef, Plan, RuleKind
+from metricforge.stats import Moments
+
+
+@dataclass(frozen=True)
+class VariantCounts:
+    variant: str
+    units: int  # analysed: not bots, not contaminated
+    events: int
+    bot_units: int
+    bot_events: int
+    contaminated_units: int
+
+
+@dataclass
+class RunData:
+    """What the engine returned, reshaped: per-variant moments of every metric."""
+
+    plan: Plan
+    stamp: Stamp
+    inputs: list[InputFile]
+    counts: dict[str, VariantCounts]
+    moments: dict[str, dict[str, Moments]] = field(default_factory=dict)  # metric -> variant
+
+
+def needed_event_columns(plan: Plan) -> tuple[str, ...]:
+    cols = {"ts", "event", plan.spec.unit}
+    for metric in plan.metrics:
+        for tree in (metric.where, metric.value):
+            if tree is not None:
+                cols |= {c.name for c in tree.find_all(__import__("sqlglot").exp.Column)}
+        if metric.kind is Kind.DWELL_SUCCESS:
+            cols.add("session_id")
+    cols.add("session_id")
+    for rule in plan.bot_filter.rules:
+        if rule.kind is RuleKind.USER_AGENT:
+            cols.add("user_agent")
+        elif rule.kind is RuleKind.DENY_IP:
+            cols.add("ip_hash")
+    return tuple(c for c in EVENT_COLUMNS if c in cols)
+
+
+def gather_inputs(plan: Plan) -> tuple[EngineInputs, list[InputFile]]:
+    base = plan.spec.path.parent
+    event_paths = parquet_files(plan.spec.events_path)
+    exposure_paths = parquet_files(plan.spec.exposures_path)
+    events = [inspect(p, base) for p in event_paths]
+    exposures = [inspect(p, base) for p in exposure_paths]
+    cols = needed_event_columns(plan)
+    check_columns(events, {c: EVENT_COLUMNS[c] for c in cols}, "event")
+    check_columns(exposures, dict(EXPOSURE_COLUMNS), "exposure")
+    hive = any("=" in part for p in event_paths for part in p.parts)
+    return EngineInputs(event_paths, exposure_paths, cols, hive), events + exposures
+
+
+def _f(value: object) -> float:
+    return float("nan") if value is None else float(value)  # type: ignore[arg-type]
+
+
+def execute(plan: Plan, engine: Engine) -> RunData:
+    engine_inputs, files = gather_inputs(plan)
+    stamp = make_stamp(plan, fingerprint(files), engine.name, engine.version())
+    table = engine.run(compile_plan(plan, engine.dialect), engine_inputs)
+    return reshape(plan, stamp, files, table)
+
+
+def reshape(plan: Plan, stamp: Stamp, files: list[InputFile], table: pa.Table) -> RunData:
+    rows = table.to_pylist()
+    spec = plan.spec
+    exposures_file = next(
+        (f.label for f in files if f.path in parquet_files(spec.exposures_path)),
+        str(spec.exposures_path),
+    )
+    seen = {r["variant"] for r in rows}
+    if not rows:
+        raise InputDataError(
+            f"no exposures of experiment '{spec.name}' between {spec.start} and {spec.end}",
+            file=exposures_file,
+            key="experiment",
+        )
+    unknown = sorted(seen - set(spec.variant_names))
+    if unknown:
+        raise InputDataError(
+            f"variant '{unknown[0]}' is in the exposure log but not in the spec {list(spec.variant_names)}",
+            file=exposures_file,
+            key="variant",
+        )
+    counts: dict[str, VariantCounts] = {}
+    clean: dict[str, dict[str, object]] = {}
+    for variant in spec.variant_names:
+        mine = [r for r in rows if r["variant"] == variant]
+        ok = [r for r in mine if not r["is_bot"] and not r["contaminated"]]
+        bots = [r for r in mine if r["is_bot"]]
+        counts[variant] = VariantCounts(
+            variant=variant,
+            units=sum(int(r["n_units"]) for r in ok),
+            events=sum(int(r["n_events"] or 0) for r in ok),
+            bot_units=sum(int(r["n_units"]) for r in bots),
+            bot_events=sum(int(r["n_events"] or 0) for r in bots),
+            contaminated_units=sum(
+                int(r["n_units"]) for r in mine if r["contaminated"] and not r["is_bot"]
+            ),
+        )
+        if not ok:
+            raise InputDataError(
+                f"variant '{variant}' has no analysable units (after the bot filter and"
+                " removing units seen in two variants)",
+                file=exposures_file,
+                key="variant",
+            )
+        clean[variant] = ok[0]
+    data = RunData(plan=plan, stamp=stamp, inputs=files, counts=counts)
+    for name, _role in plan.reported:
+        data.moments[name] = {v: _moments(plan.metric(name), r) for v, r in clean.items()}
+    return data
+
+
+def _moments(metric: MetricDef, row: dict[str, object]) -> Moments:
+    cols = result_columns(metric)
+    n = int(row[cols.n] or 0)  # type: ignore[call-overload]
+    var_x = _f(row[cols.var_x])
+    if metric.is_ratio:
+        assert cols.mean_y and cols.var_y and cols.cov_xy
+        return Moments(
+            n=n,
+            mean_x=_f(row[cols.mean_x]),
+            mean_y=_f(row[cols.mean_y]),
+            var_x=var_x,
+            var_y=_f(row[cols.var_y]),
+            cov_xy=_f(row[cols.cov_xy]),
+        )
+    return Moments.of_mean(n, _f(row[cols.mean_x]), var_x if not math.isnan(var_x) else 0.0)
+
+
+def events_root(path: Path) -> Path:
+    return path if path.is_dir() else path.parent

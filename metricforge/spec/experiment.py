@@ -1,0 +1,167 @@
+"""Loading one experiment's analysis spec (``pipelines/<experiment>.toml``) into a Plan."""
+
+from __future__ import annotations
+
+import datetime as dt
+import math
+from pathlib import Path
+
+from metricforge.errors import SpecError, closest
+from metricforge.schema import EVENT_COLUMNS
+from metricforge.spec.filters import load_filter
+from metricforge.spec.metrics import load_library
+from metricforge.spec.model import ExperimentSpec, MetricDef, Plan
+from metricforge.spec.tomlfile import Section, read_toml
+
+
+def _datetime(sec: Section, key: str) -> dt.datetime:
+    value = sec.table.get(key)
+    if isinstance(value, dt.datetime):
+        if value.tzinfo is not None:
+            value = value.astimezone(dt.UTC).replace(tzinfo=None)
+        return value
+    if isinstance(value, dt.date):
+        return dt.datetime(value.year, value.month, value.day)
+    if value is None:
+        raise sec.error("required key is missing", key)
+    raise sec.error("expected a TOML date or date-time (UTC)", key)
+
+
+def load_spec(path: Path) -> ExperimentSpec:
+    toml = read_toml(path)
+    top = Section(toml, (), toml.data)
+    top.check_keys({"experiment", "data", "metrics"})
+    ex = top.sub("experiment")
+    ex.check_keys(
+        {
+            "name",
+            "description",
+            "unit",
+            "variants",
+            "control",
+            "start",
+            "end",
+            "window_days",
+            "alpha",
+            "srm_alpha",
+            "bot_filter",
+        }
+    )
+    data = top.sub("data")
+    data.check_keys({"events", "exposures", "definitions", "filters"})
+    met = top.sub("metrics")
+    met.check_keys({"decision", "guardrails", "diagnostics"})
+
+    unit = ex.req_str("unit")
+    if unit not in EVENT_COLUMNS or EVENT_COLUMNS[unit] != "string":
+        ids = [c for c, t in EVENT_COLUMNS.items() if t == "string" and c.endswith("_id")]
+        raise ex.error(
+            f"unit must be an id column of the events, one of {ids}",
+            "unit",
+            suggestion=closest(unit, ids),
+        )
+    variants_sec = ex.sub("variants")
+    variants: list[tuple[str, float]] = []
+    for name in variants_sec.table:
+        share = variants_sec.number(name)
+        if not (math.isfinite(share) and share > 0):
+            raise variants_sec.error("planned share must be a positive number", name)
+        variants.append((name, share))
+    if len(variants) < 2:
+        raise ex.error("an experiment needs at least two variants", "variants")
+    total = sum(s for _, s in variants)
+    control = ex.req_str("control")
+    names = [v for v, _ in variants]
+    if control not in names:
+        raise ex.error(
+            f"control '{control}' is not among the variants {names}",
+            "control",
+            suggestion=closest(control, names),
+        )
+    variants.sort(key=lambda v: (v[0] != control, names.index(v[0])))
+    start, end = _datetime(ex, "start"), _datetime(ex, "end")
+    if end <= start:
+        raise ex.error("end must be after start", "end")
+    window = ex.integer("window_days", 14)
+    if window < 1:
+        raise ex.error("window_days must be at least 1", "window_days")
+    alpha = ex.number("alpha", 0.05)
+    srm_alpha = ex.number("srm_alpha", 0.001)
+    for key, value in (("alpha", alpha), ("srm_alpha", srm_alpha)):
+        if not 0 < value < 0.5:
+            raise ex.error(f"{key} must be between 0 and 0.5", key)
+    base = path.parent
+
+    decision = met.req_str("decision")
+    guardrails = tuple(met.str_list("guardrails", []))
+    diagnostics = tuple(met.str_list("diagnostics", []))
+    seen: set[str] = set()
+    for name in (decision, *guardrails, *diagnostics):
+        if name in seen:
+            raise met.error(f"metric '{name}' is listed twice", "guardrails")
+        seen.add(name)
+    return ExperimentSpec(
+        name=ex.req_str("name"),
+        description=ex.str("description", "") or "",
+        path=path,
+        sha256=toml.sha256,
+        text=toml.text,
+        unit=unit,
+        variants=tuple((v, s / total) for v, s in variants),
+        control=control,
+        start=start,
+        end=end,
+        window_days=window,
+        alpha=alpha,
+        srm_alpha=srm_alpha,
+        bot_filter_ref=ex.req_str("bot_filter"),
+        events_path=base / data.req_str("events"),
+        exposures_path=base / data.req_str("exposures"),
+        definition_paths=tuple(base / p for p in data.str_list("definitions", ["../metric_defs"])),
+        decision=decision,
+        guardrails=guardrails,
+        diagnostics=diagnostics,
+    )
+
+
+def filters_folder(spec: ExperimentSpec) -> Path:
+    toml = read_toml(spec.path)
+    folder = toml.data.get("data", {}).get("filters")
+    if isinstance(folder, str):
+        return spec.path.parent / folder
+    return (
+        spec.definition_paths[0] / "filters"
+        if spec.definition_paths[0].is_dir()
+        else (spec.definition_paths[0].parent / "filters")
+    )
+
+
+def load_plan(path: Path, *, bot_filter: str | None = None) -> Plan:
+    """Spec + library + filter → the Plan, with every reference checked."""
+    spec = load_spec(path)
+    library = load_library(spec.definition_paths)
+    reported = spec.roles()
+    for name, role in reported:
+        if name not in library:
+            key = {"decision": "decision"}.get(role.value, role.value + "s")
+            raise SpecError(
+                f"unknown metric '{name}'",
+                file=str(path),
+                key=f"metrics.{key}",
+                suggestion=closest(name, library),
+                line=read_toml(path).line_of("metrics", key),
+            )
+    needed: list[MetricDef] = []
+
+    def add(name: str) -> None:
+        metric = library[name]
+        for dep in metric.dependencies():
+            add(dep)
+        if metric not in needed:
+            needed.append(metric)
+
+    for name, _ in reported:
+        add(name)
+    ref = bot_filter or spec.bot_filter_ref
+    flt = load_filter(filters_folder(spec), ref, spec_file=str(path))
+    return Plan(spec=spec, bot_filter=flt, metrics=tuple(needed), reported=reported)

@@ -1,0 +1,171 @@
+"""Loading the shared metric library (``metric_defs/*.toml``)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from metricforge.compile.expressions import parse_expression
+from metricforge.errors import SpecError, closest
+from metricforge.schema import EVENT_COLUMNS, EVENT_TYPES, NUMERIC_TYPES
+from metricforge.spec.model import PER_UNIT_KINDS, Direction, Kind, MetricDef, Origin
+from metricforge.spec.tomlfile import Section, TomlFile, read_toml
+
+_COMMON = {"kind", "direction", "unit_label", "description"}
+_KEYS: dict[Kind, set[str]] = {
+    Kind.COUNT: _COMMON | {"event", "where"},
+    Kind.SUM: _COMMON | {"event", "where", "value"},
+    Kind.MEAN: _COMMON | {"event", "where", "value"},
+    Kind.PROPORTION: _COMMON | {"event", "where"},
+    Kind.RATIO: _COMMON | {"numerator", "denominator"},
+    Kind.DWELL_SUCCESS: _COMMON | {"where", "threshold_s"},
+    Kind.COMPOSITE: _COMMON | {"terms"},
+}
+
+
+def definition_files(paths: tuple[Path, ...]) -> list[Path]:
+    """The TOML files named by ``paths``: files as given, folders' *.toml sorted."""
+    files: list[Path] = []
+    for path in paths:
+        if path.is_dir():
+            files.extend(sorted(p for p in path.glob("*.toml") if p.is_file()))
+        else:
+            files.append(path)
+    return files
+
+
+def load_library(paths: tuple[Path, ...]) -> dict[str, MetricDef]:
+    """Every metric defined in ``paths``, checked for references and cycles."""
+    library: dict[str, MetricDef] = {}
+    files = definition_files(paths)
+    if not files:
+        raise SpecError("no metric definition files found", file=", ".join(map(str, paths)))
+    for path in files:
+        toml = read_toml(path)
+        extra = set(toml.data) - {"metric"}
+        if extra:
+            key = sorted(extra)[0]
+            raise toml.error("unknown top-level key", key, suggestion=closest(key, ["metric"]))
+        metrics = Section(toml, ("metric",), toml.data.get("metric", {}))
+        for name in metrics.table:
+            if name in library:
+                first = library[name].origin.file
+                raise toml.error(f"metric is already defined in {first}", "metric", name)
+            library[name] = _load_metric(toml, name)
+    for metric in library.values():
+        _check_references(metric, library)
+    for name in library:
+        _check_acyclic(name, library, ())
+    return library
+
+
+def _load_metric(toml: TomlFile, name: str) -> MetricDef:
+    sec = Section(toml, ("metric", name), toml.data["metric"][name])
+    kind_text = sec.req_str("kind")
+    try:
+        kind = Kind(kind_text)
+    except ValueError:
+        names = [k.value for k in Kind]
+        raise sec.error(
+            f"unknown metric kind '{kind_text}'", "kind", suggestion=closest(kind_text, names)
+        ) from None
+    sec.check_keys(_KEYS[kind])
+    direction_text = sec.str("direction", "higher")
+    try:
+        direction = Direction(direction_text)
+    except ValueError:
+        raise sec.error("direction must be 'higher' or 'lower'", "direction") from None
+    origin = Origin(toml.name, toml.line_of("metric", name, "kind"))
+    fields: dict[str, object] = {}
+    if kind in (Kind.COUNT, Kind.SUM, Kind.MEAN, Kind.PROPORTION):
+        events = tuple(sec.str_list("event", []))
+        for event in events:
+            if event not in EVENT_TYPES:
+                raise sec.error(
+                    f"unknown event type '{event}'", "event", suggestion=closest(event, EVENT_TYPES)
+                )
+        fields["events"] = events
+    if sec.has("where"):
+        text = sec.str("where")
+        fields["where_text"] = text
+        fields["where"] = parse_expression(
+            text,
+            columns=EVENT_COLUMNS,
+            file=toml.name,
+            key=f"metric.{name}.where",
+            line=toml.line_of("metric", name, "where"),
+        )
+    if kind in (Kind.SUM, Kind.MEAN):
+        text = sec.req_str("value")
+        tree = parse_expression(
+            text,
+            columns=EVENT_COLUMNS,
+            file=toml.name,
+            key=f"metric.{name}.value",
+            line=toml.line_of("metric", name, "value"),
+        )
+        if tree.key == "column" and EVENT_COLUMNS[tree.name] not in NUMERIC_TYPES:
+            raise sec.error(f"column '{tree.name}' is not numeric", "value")
+        fields["value_text"] = text
+        fields["value"] = tree
+    if kind is Kind.RATIO:
+        fields["numerator"] = sec.req_str("numerator")
+        fields["denominator"] = sec.req_str("denominator")
+    if kind is Kind.DWELL_SUCCESS:
+        threshold = sec.number("threshold_s", 30.0)
+        if not 0 < threshold <= 86_400:
+            raise sec.error("threshold_s must be in (0, 86400] seconds", "threshold_s")
+        fields["threshold_s"] = threshold
+    if kind is Kind.COMPOSITE:
+        terms = sec.sub("terms")
+        if not terms.table:
+            raise terms.error("a composite needs at least one term")
+        parsed: list[tuple[str, float]] = []
+        for term in terms.table:
+            weight = terms.number(term)
+            parsed.append((term, weight))
+        fields["terms"] = tuple(parsed)
+    return MetricDef(
+        name=name,
+        kind=kind,
+        origin=origin,
+        direction=direction,
+        unit_label=sec.str("unit_label", "") or "",
+        description=sec.str("description", "") or "",
+        raw=dict(sec.table),
+        **fields,  # type: ignore[arg-type]
+    )
+
+
+def _check_references(metric: MetricDef, library: dict[str, MetricDef]) -> None:
+    key = {"ratio": "numerator", "composite": "terms"}.get(metric.kind.value, "")
+    for dep in metric.dependencies():
+        where = f"metric.{metric.name}.{key}"
+        if dep not in library:
+            raise SpecError(
+                f"unknown metric '{dep}'",
+                file=metric.origin.file,
+                line=metric.origin.line,
+                key=where,
+                suggestion=closest(dep, library),
+            )
+        if library[dep].kind not in PER_UNIT_KINDS:
+            raise SpecError(
+                f"'{dep}' is a {library[dep].kind.value} metric; ratio parts and composite terms"
+                " must be count, sum, proportion or composite",
+                file=metric.origin.file,
+                line=metric.origin.line,
+                key=where,
+            )
+
+
+def _check_acyclic(name: str, library: dict[str, MetricDef], trail: tuple[str, ...]) -> None:
+    if name in trail:
+        metric = library[trail[0]]
+        raise SpecError(
+            "metrics refer to each other in a cycle: " + " -> ".join((*trail, name)),
+            file=metric.origin.file,
+            line=metric.origin.line,
+            key=f"metric.{trail[0]}",
+        )
+    for dep in library[name].dependencies():
+        _check_acyclic(dep, library, (*trail, name))

@@ -1,0 +1,155 @@
+"""Typed, immutable objects that the loaders produce and the compiler consumes."""
+
+from __future__ import annotations
+
+import datetime as dt
+from dataclasses import dataclass, field
+from enum import StrEnum
+from pathlib import Path
+
+import sqlglot.expressions as exp
+
+
+class Kind(StrEnum):
+    COUNT = "count"
+    SUM = "sum"
+    MEAN = "mean"
+    PROPORTION = "proportion"
+    RATIO = "ratio"
+    DWELL_SUCCESS = "dwell_success"
+    COMPOSITE = "composite"
+
+
+# Kinds whose per-unit value is a plain number (denominator 1 per unit), so they
+# may serve as ratio parts and composite terms.
+PER_UNIT_KINDS = frozenset({Kind.COUNT, Kind.SUM, Kind.PROPORTION, Kind.COMPOSITE})
+
+
+class Direction(StrEnum):
+    HIGHER = "higher"
+    LOWER = "lower"
+
+
+class Role(StrEnum):
+    DECISION = "decision"
+    GUARDRAIL = "guardrail"
+    DIAGNOSTIC = "diagnostic"
+
+
+@dataclass(frozen=True)
+class Origin:
+    """Where a definition came from, for error messages."""
+
+    file: str
+    line: int | None = None
+
+
+@dataclass(frozen=True)
+class MetricDef:
+    name: str
+    kind: Kind
+    origin: Origin
+    events: tuple[str, ...] = ()  # event types that count; empty = any event
+    where: exp.Expression | None = None  # parsed, whitelisted event filter
+    where_text: str | None = None
+    value: exp.Expression | None = None  # parsed value expression (sum, mean)
+    value_text: str | None = None
+    numerator: str | None = None  # ratio parts: names of per-unit metrics
+    denominator: str | None = None
+    terms: tuple[tuple[str, float], ...] = ()  # composite: (metric, weight)
+    threshold_s: float = 30.0  # dwell_success
+    direction: Direction = Direction.HIGHER
+    unit_label: str = ""
+    description: str = ""
+    raw: dict[str, object] = field(default_factory=dict, compare=False, hash=False)
+
+    @property
+    def is_ratio(self) -> bool:
+        return self.kind in (Kind.RATIO, Kind.DWELL_SUCCESS)
+
+    def dependencies(self) -> tuple[str, ...]:
+        if self.kind is Kind.RATIO:
+            assert self.numerator is not None and self.denominator is not None
+            return (self.numerator, self.denominator)
+        if self.kind is Kind.COMPOSITE:
+            return tuple(name for name, _ in self.terms)
+        return ()
+
+
+class RuleKind(StrEnum):
+    USER_AGENT = "user_agent"  # case-insensitive substring tokens
+    SESSION_EVENTS = "session_events"  # more events than `max` in one session
+    DENY_IP = "deny_ip_hash"
+    DENY_UNIT = "deny_unit"
+
+
+@dataclass(frozen=True)
+class BotRule:
+    kind: RuleKind
+    tokens: tuple[str, ...] = ()
+    max_events: int = 0
+
+
+@dataclass(frozen=True)
+class BotFilter:
+    name: str
+    version: int
+    path: Path
+    sha256: str
+    released: str
+    rules: tuple[BotRule, ...]
+    text: str
+
+    @property
+    def ref(self) -> str:
+        return f"{self.name}@{self.version}"
+
+
+@dataclass(frozen=True)
+class ExperimentSpec:
+    name: str
+    path: Path
+    sha256: str
+    text: str
+    unit: str
+    variants: tuple[tuple[str, float], ...]  # (variant, planned share), control first
+    control: str
+    start: dt.datetime
+    end: dt.datetime
+    window_days: int
+    alpha: float
+    bot_filter_ref: str
+    events_path: Path
+    exposures_path: Path
+    definition_paths: tuple[Path, ...]
+    decision: str
+    guardrails: tuple[str, ...]
+    diagnostics: tuple[str, ...]
+    srm_alpha: float = 0.001
+    description: str = ""
+
+    @property
+    def variant_names(self) -> tuple[str, ...]:
+        return tuple(v for v, _ in self.variants)
+
+    def roles(self) -> tuple[tuple[str, Role], ...]:
+        out = [(self.decision, Role.DECISION)]
+        out += [(m, Role.GUARDRAIL) for m in self.guardrails]
+        out += [(m, Role.DIAGNOSTIC) for m in self.diagnostics]
+        return tuple(out)
+
+
+@dataclass(frozen=True)
+class Plan:
+    """Everything the compiler needs: the spec, the filter, and the metrics in order."""
+
+    spec: ExperimentSpec
+    bot_filter: BotFilter
+    metrics: tuple[MetricDef, ...]  # the reported metrics plus their dependencies
+    reported: tuple[tuple[str, Role], ...]
+
+    def metric(self, name: str) -> MetricDef:
+        for m in self.metrics:
+            if m.name == name:
+                return m
+        raise KeyError(name)
