@@ -20,7 +20,7 @@ app = typer.Typer(
     pretty_exceptions_enable=False,
 )
 err_console = Console(stderr=True, highlight=False, soft_wrap=True)
-out_console = Console(highlight=False)
+out_console = Console(highlight=False, width=None if sys.stdout.isatty() else 150)
 
 T = TypeVar("T")
 
