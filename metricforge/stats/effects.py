@@ -55,13 +55,15 @@ def compare(treatment: Moments, control: Moments, *, alpha: float = 0.05) -> Eff
         q = st.t.ppf(1 - alpha / 2, df)
         p = float(2 * st.t.sf(abs(diff) / se, df))
         low, high = diff - q * se, diff + q * se
-    if c_val == 0:
-        rel = rel_low = rel_high = math.nan
-    else:
-        rel = t_val / c_val - 1.0
-        rel_se = math.sqrt(v_t / c_val**2 + t_val**2 * v_c / c_val**4)
-        z = st.norm.ppf(1 - alpha / 2)
-        rel_low, rel_high = rel - z * rel_se, rel + z * rel_se
+    rel = rel_low = rel_high = math.nan
+    if abs(c_val) > 1e-150:
+        ratio_tc = t_val / c_val
+        rel_var = (v_t + ratio_tc**2 * v_c) / c_val**2 if abs(ratio_tc) < 1e150 else math.inf
+        if math.isfinite(rel_var):
+            rel_se = math.sqrt(rel_var)
+            z = st.norm.ppf(1 - alpha / 2)
+            rel = ratio_tc - 1.0
+            rel_low, rel_high = rel - z * rel_se, rel + z * rel_se
     return Effect(
         value=t_val,
         control_value=c_val,

@@ -1,0 +1,169 @@
+"""The demo scorecards against an independent computation in plain polars.
+
+The reference below is written from the metric definitions' meaning, not from the
+compiler: it joins, windows, filters bots and aggregates with polars' own operations.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+import math
+from pathlib import Path
+
+import polars as pl
+import pytest
+from typer.testing import CliRunner
+
+from metricforge.cli import app
+from tests.conftest import DEMO_EXPERIMENTS, PIPELINES, SAMPLE
+
+START, END, WINDOW = dt.datetime(2026, 9, 15), dt.datetime(2026, 9, 29), dt.timedelta(days=14)
+UA_TOKENS = ("bot", "crawler", "spider", "headless")  # bots@2 rule 1
+SESSION_LIMIT = 60  # bots@2 rule 2
+
+
+@pytest.fixture(scope="module")
+def events() -> pl.DataFrame:
+    return pl.read_parquet(SAMPLE / "events" / "**" / "*.parquet", hive_partitioning=False)
+
+
+def reference(events: pl.DataFrame, experiment: str) -> dict[str, dict[str, tuple[float, int]]]:
+    """metric -> variant -> (value, n units)."""
+    exp = (
+        pl.read_parquet(SAMPLE / "exposures.parquet")
+        .filter((pl.col("experiment") == experiment) & (pl.col("ts") >= START) & (pl.col("ts") < END))
+        .group_by("unit_id")
+        .agg(pl.col("ts").min().alias("first_ts"), pl.col("variant").min(),
+             pl.col("variant").n_unique().alias("n_var"))
+    )
+    joined = events.join(exp, left_on="cookie_id", right_on="unit_id").filter(
+        (pl.col("ts") >= pl.col("first_ts")) & (pl.col("ts") < pl.col("first_ts") + WINDOW)
+    )
+    ua = pl.col("user_agent").str.to_lowercase()
+    ua_bot = joined.filter(pl.any_horizontal([ua.str.contains(t, literal=True) for t in UA_TOKENS]))
+    big = joined.group_by("cookie_id", "session_id").len().filter(pl.col("len") > SESSION_LIMIT)
+    bots = set(ua_bot["cookie_id"]) | set(big["cookie_id"])
+    units = exp.filter((pl.col("n_var") == 1) & ~pl.col("unit_id").is_in(list(bots)))
+    ev = joined.filter(pl.col("cookie_id").is_in(units["unit_id"].implode()))
+
+    def per_unit(expr: pl.Expr, name: str, frame: pl.DataFrame = ev) -> pl.DataFrame:
+        agg = frame.group_by("cookie_id").agg(expr.alias(name))
+        out = units.join(agg, left_on="unit_id", right_on="cookie_id", how="left")
+        return out.with_columns(pl.col(name).fill_null(0))
+
+    is_ = lambda e: pl.col("event") == e  # noqa: E731
+    cols = {
+        "revenue": pl.col("value").filter(is_("purchase")).sum(),
+        "purchases": is_("purchase").sum(),
+        "refunds": is_("refund").sum(),
+        "unsubscribes": is_("unsubscribe").sum(),
+        "mobile_purchases": (is_("purchase") & (pl.col("device") == "mobile")).sum(),
+        "impressions": is_("impression").sum(),
+        "clicks": is_("click").sum(),
+    }
+    table = units
+    for name, expr in cols.items():
+        table = table.join(per_unit(expr, name).select("unit_id", name), on="unit_id")
+    table = table.with_columns(
+        (pl.col("purchases") > 0).cast(pl.Float64).alias("buyer_share"),
+        (pl.col("revenue") - 25.0 * pl.col("unsubscribes")).alias("net_value"),
+    )
+    # dwell success per session: a click with no back within (t, t + 30 s]
+    sessions = (
+        ev.filter(pl.col("session_id").is_not_null())
+        .group_by("cookie_id", "session_id")
+        .agg(pl.col("ts").filter(is_("click")).alias("clicks"),
+             pl.col("ts").filter(is_("back")).alias("backs"))
+    )
+    good = [
+        any(not any(c < b <= c + dt.timedelta(seconds=30) for b in backs) for c in clicks)
+        for clicks, backs in zip(sessions["clicks"], sessions["backs"], strict=True)
+    ]
+    sessions = sessions.with_columns(pl.Series("good", good, dtype=pl.Float64))
+    sess = sessions.group_by("cookie_id").agg(pl.col("good").sum(), pl.len().alias("n_sess"))
+    table = table.join(sess, left_on="unit_id", right_on="cookie_id", how="left").with_columns(
+        pl.col("good").fill_null(0), pl.col("n_sess").fill_null(0)
+    )
+    latency = ev.filter(is_("page_load") & pl.col("latency_ms").is_not_null()).group_by(
+        "cookie_id").agg(pl.col("latency_ms").mean().alias("lat"))
+    out: dict[str, dict[str, tuple[float, int]]] = {}
+    for variant, frame in table.group_by("variant"):
+        v = str(variant[0])
+        n = frame.height
+        for name in (*cols, "buyer_share", "net_value"):
+            out.setdefault(name, {})[v] = (float(frame[name].cast(pl.Float64).mean()), n)
+        out.setdefault("click_through", {})[v] = (frame["clicks"].sum() / frame["impressions"].sum(), n)
+        out.setdefault("session_success", {})[v] = (frame["good"].sum() / frame["n_sess"].sum(), n)
+        lat = frame.join(latency, left_on="unit_id", right_on="cookie_id")
+        out.setdefault("page_latency", {})[v] = (float(lat["lat"].mean()), lat.height)
+    return out
+
+
+@pytest.fixture(scope="module")
+def scorecards(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
+    out = {}
+    for name in DEMO_EXPERIMENTS:
+        target = tmp_path_factory.mktemp(name) / "out"
+        result = CliRunner().invoke(app, ["run", str(PIPELINES / f"{name}.toml"), "--out", str(target)])
+        assert result.exit_code == 0, result.output
+        out[name] = target
+    return out
+
+
+@pytest.mark.parametrize("experiment", DEMO_EXPERIMENTS)
+def test_every_value_matches_independent_computation(
+    experiment: str, events: pl.DataFrame, scorecards: dict[str, Path]
+) -> None:
+    expected = reference(events, experiment)
+    rows = json.loads((scorecards[experiment] / "scorecard.json").read_text())["metrics"]
+    assert {r["metric"] for r in rows} == set(expected) - {"impressions", "clicks"}
+    for row in rows:
+        ref = expected[row["metric"]]
+        assert row["value"] == pytest.approx(ref["treatment"][0], rel=1e-9), row["metric"]
+        assert row["control_value"] == pytest.approx(ref["control"][0], rel=1e-9), row["metric"]
+        assert row["n_units"] == ref["treatment"][1], row["metric"]
+        assert row["n_units_control"] == ref["control"][1], row["metric"]
+
+
+def test_true_effect_inside_decision_ci(scorecards: dict[str, Path]) -> None:
+    truth = json.loads((SAMPLE / "TRUE_EFFECTS.json").read_text())["experiments"]
+    card = json.loads((scorecards["checkout_layout"] / "scorecard.json").read_text())
+    decision = next(r for r in card["metrics"] if r["role"] == "decision")
+    true_rel = truth["checkout_layout"]["relative_effects"][decision["metric"]]
+    assert decision["rel_ci_low"] < true_rel < decision["rel_ci_high"]
+
+
+def test_aa_has_no_sample_ratio_mismatch(scorecards: dict[str, Path]) -> None:
+    card = json.loads((scorecards["homepage_aa"] / "scorecard.json").read_text())
+    srm = next(c for c in card["trust"]["checks"] if c["check"] == "sample_ratio_mismatch")
+    assert srm["passed"] and srm["p_value"] > 0.001
+
+
+def test_every_row_is_stamped_and_holds_no_unit_ids(scorecards: dict[str, Path]) -> None:
+    card_path = scorecards["checkout_layout"]
+    table = pl.read_parquet(card_path / "scorecard.parquet")
+    for column in ("bot_filter", "bot_filter_version", "bot_filter_sha256", "definitions_sha256",
+                   "spec_sha256", "inputs_fingerprint", "tool_version"):
+        assert table[column].null_count() == 0
+    some_units = pl.read_parquet(SAMPLE / "exposures.parquet")["unit_id"].unique().head(500)
+    for name in ("scorecard.json", "scorecard.parquet"):
+        blob = (card_path / name).read_bytes()
+        assert not any(u.encode() in blob for u in some_units)
+
+
+def test_two_runs_are_byte_identical(scorecards: dict[str, Path], tmp_path: Path) -> None:
+    again = tmp_path / "again"
+    result = CliRunner().invoke(
+        app, ["run", str(PIPELINES / "checkout_layout.toml"), "--out", str(again)]
+    )
+    assert result.exit_code == 0, result.output
+    for name in ("scorecard.parquet", "scorecard.json"):
+        assert (again / name).read_bytes() == (scorecards["checkout_layout"] / name).read_bytes()
+
+
+def test_values_are_finite(scorecards: dict[str, Path]) -> None:
+    for path in scorecards.values():
+        for row in json.loads((path / "scorecard.json").read_text())["metrics"]:
+            assert row["p_value"] is not None and 0 <= row["p_value"] <= 1
+            assert math.isfinite(row["value"])
