@@ -149,7 +149,7 @@ def _check_node(node: exp.Expression, columns: Mapping[str, str], fail: object) 
         raise fail("comments are not allowed in expressions")
     if type(node) in _ALLOWED_FUNCTIONS:
         return
-    if isinstance(node, exp.Func) and not isinstance(node, exp.Case | exp.If | exp.Cast):
+    if isinstance(node, exp.Func) and not isinstance(node, _ALLOWED_NODES):
         name = _name_of(node)
         raise fail(
             f"function '{name}' is not allowed; allowed: {', '.join(ALLOWED_FUNCTION_NAMES)}",

@@ -1,0 +1,54 @@
+"""Golden files of the compiled SQL per dialect, and the shape of the one query.
+
+Regenerate after an intended compiler change with:
+    METRICFORGE_UPDATE_GOLDEN=1 python -m pytest tests/test_sql_golden.py
+"""
+
+from __future__ import annotations
+
+import os
+
+import pytest
+import sqlglot
+import sqlglot.expressions as exp
+
+from metricforge.compile.query import compile_plan, render
+from metricforge.spec import load_plan
+from tests.conftest import DEMO_EXPERIMENTS, PIPELINES, ROOT
+
+GOLDEN = ROOT / "tests" / "golden"
+
+
+@pytest.mark.parametrize("dialect", ["duckdb", "spark"])
+@pytest.mark.parametrize("experiment", DEMO_EXPERIMENTS[:2])
+def test_compiled_sql_matches_golden_file(experiment: str, dialect: str) -> None:
+    sql = render(load_plan(PIPELINES / f"{experiment}.toml"), dialect) + "\n"
+    path = GOLDEN / f"{experiment}.{dialect}.sql"
+    if os.environ.get("METRICFORGE_UPDATE_GOLDEN"):
+        path.write_text(sql, encoding="utf-8")
+    assert sql == path.read_text(encoding="utf-8")
+
+
+def test_one_query_one_scan_one_unit_grouping() -> None:
+    """All metrics share one read of the events and one per-unit aggregation."""
+    plan = load_plan(PIPELINES / "checkout_layout.toml")
+    tree = compile_plan(plan)
+    sql = tree.sql(dialect="duckdb")
+    reparsed = sqlglot.parse(sql, read="duckdb")
+    assert len(reparsed) == 1 and isinstance(reparsed[0], exp.Select)
+    tables = [t.name for t in tree.find_all(exp.Table)]
+    assert tables.count("events") == 1
+    assert tables.count("exposures") == 1
+    ctes = [c.alias for c in tree.find_all(exp.CTE)]
+    assert ctes == ["first_exposure", "sessions", "units", "classified"]
+
+
+@pytest.mark.parametrize("dialect", ["duckdb", "spark"])
+def test_no_constructs_that_transpile_wrongly(dialect: str) -> None:
+    sql = render(load_plan(PIPELINES / "checkout_layout.toml"), dialect).upper()
+    for banned in ("ASOF", "POSITIONAL", "READ_PARQUET", "EPOCH(", "QUANTILE_CONT"):
+        assert banned not in sql
+    if dialect == "spark":
+        assert " -> " in sql and "SIZE(" in sql and "LENGTH(" not in sql
+    else:
+        assert "LAMBDA " in sql
