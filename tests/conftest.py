@@ -18,6 +18,7 @@ DEMO_EXPERIMENTS = ("checkout_layout", "homepage_aa", "promo_banner", "image_aut
 def cli() -> CliRunner:
     return CliRunner()
 
+
 import datetime as dt  # noqa: E402
 from typing import Any  # noqa: E402
 
@@ -31,8 +32,12 @@ T0 = dt.datetime(2026, 9, 15, 12)
 
 def event(unit: str, name: str, minutes: float = 1.0, **extra: Any) -> dict[str, Any]:
     row: dict[str, Any] = {
-        "ts": T0 + dt.timedelta(minutes=minutes), "cookie_id": unit, "session_id": f"s-{unit}",
-        "event": name, "user_agent": "Mozilla/5.0", "device": "desktop",
+        "ts": T0 + dt.timedelta(minutes=minutes),
+        "cookie_id": unit,
+        "session_id": f"s-{unit}",
+        "event": name,
+        "user_agent": "Mozilla/5.0",
+        "device": "desktop",
     }
     row.update(extra)
     return row
@@ -78,12 +83,15 @@ def write_case(
 ) -> Path:
     """A small experiment in ``folder``: events/, exposures.parquet and spec.toml."""
     (folder / "events").mkdir(parents=True, exist_ok=True)
-    pq.write_table(pa.Table.from_pylist(events, schema=EVENT_SCHEMA),
-                   folder / "events" / "part-0.parquet")
-    pq.write_table(pa.Table.from_pylist(exposures, schema=EXPOSURE_SCHEMA),
-                   folder / "exposures.parquet")
+    pq.write_table(
+        pa.Table.from_pylist(events, schema=EVENT_SCHEMA), folder / "events" / "part-0.parquet"
+    )
+    pq.write_table(
+        pa.Table.from_pylist(exposures, schema=EXPOSURE_SCHEMA), folder / "exposures.parquet"
+    )
     text = spec_text or SPEC.format(
-        defs=(defs or ROOT / "metric_defs").as_posix(), decision=decision,
+        defs=(defs or ROOT / "metric_defs").as_posix(),
+        decision=decision,
         diagnostics=list(diagnostics).__repr__().replace("'", '"'),
     )
     spec = folder / "spec.toml"

@@ -39,24 +39,43 @@ def malformed_toml(folder: Path) -> tuple[Path, list[str]]:
 
 def unknown_metric(folder: Path) -> tuple[Path, list[str]]:
     spec = write_case(folder, *_good(folder), decision="revenu")
-    return spec, ["spec.toml", "metrics.decision", "unknown metric 'revenu'", "did you mean 'revenue'"]
+    return spec, [
+        "spec.toml",
+        "metrics.decision",
+        "unknown metric 'revenu'",
+        "did you mean 'revenue'",
+    ]
 
 
 def unknown_column(folder: Path) -> tuple[Path, list[str]]:
     defs = _defs_copy(folder)
     shop = defs / "shop.toml"
-    shop.write_text(shop.read_text().replace("where = \"device = 'mobile'\"", "where = \"devise = 'mobile'\""))
+    shop.write_text(
+        shop.read_text().replace("where = \"device = 'mobile'\"", "where = \"devise = 'mobile'\"")
+    )
     spec = write_case(folder, *_good(folder), defs=defs)
-    return spec, ["shop.toml", "metric.mobile_purchases.where", "unknown column 'devise'", "'device'"]
+    return spec, [
+        "shop.toml",
+        "metric.mobile_purchases.where",
+        "unknown column 'devise'",
+        "'device'",
+    ]
 
 
 def forbidden_function(folder: Path) -> tuple[Path, list[str]]:
     defs = _defs_copy(folder)
     shop = defs / "shop.toml"
-    shop.write_text(shop.read_text().replace(
-        "where = \"device = 'mobile'\"", "where = \"read_text('/etc/passwd') = 'x'\""))
+    shop.write_text(
+        shop.read_text().replace(
+            "where = \"device = 'mobile'\"", "where = \"read_text('/etc/passwd') = 'x'\""
+        )
+    )
     spec = write_case(folder, *_good(folder), defs=defs)
-    return spec, ["shop.toml", "metric.mobile_purchases.where", "function 'read_text' is not allowed"]
+    return spec, [
+        "shop.toml",
+        "metric.mobile_purchases.where",
+        "function 'read_text' is not allowed",
+    ]
 
 
 def missing_column(folder: Path) -> tuple[Path, list[str]]:
@@ -109,8 +128,16 @@ def wrong_type(folder: Path) -> tuple[Path, list[str]]:
 
 
 CASES: list[Callable[[Path], tuple[Path, list[str]]]] = [
-    malformed_toml, unknown_metric, unknown_column, forbidden_function, missing_column,
-    empty_exposures, control_not_a_variant, changed_filter, one_variant_only, corrupt_parquet,
+    malformed_toml,
+    unknown_metric,
+    unknown_column,
+    forbidden_function,
+    missing_column,
+    empty_exposures,
+    control_not_a_variant,
+    changed_filter,
+    one_variant_only,
+    corrupt_parquet,
     wrong_type,
 ]
 

@@ -32,10 +32,15 @@ def reference(events: pl.DataFrame, experiment: str) -> dict[str, dict[str, tupl
     """metric -> variant -> (value, n units)."""
     exp = (
         pl.read_parquet(SAMPLE / "exposures.parquet")
-        .filter((pl.col("experiment") == experiment) & (pl.col("ts") >= START) & (pl.col("ts") < END))
+        .filter(
+            (pl.col("experiment") == experiment) & (pl.col("ts") >= START) & (pl.col("ts") < END)
+        )
         .group_by("unit_id")
-        .agg(pl.col("ts").min().alias("first_ts"), pl.col("variant").min(),
-             pl.col("variant").n_unique().alias("n_var"))
+        .agg(
+            pl.col("ts").min().alias("first_ts"),
+            pl.col("variant").min(),
+            pl.col("variant").n_unique().alias("n_var"),
+        )
     )
     joined = events.join(exp, left_on="cookie_id", right_on="unit_id").filter(
         (pl.col("ts") >= pl.col("first_ts")) & (pl.col("ts") < pl.col("first_ts") + WINDOW)
@@ -73,8 +78,10 @@ def reference(events: pl.DataFrame, experiment: str) -> dict[str, dict[str, tupl
     sessions = (
         ev.filter(pl.col("session_id").is_not_null())
         .group_by("cookie_id", "session_id")
-        .agg(pl.col("ts").filter(is_("click")).alias("clicks"),
-             pl.col("ts").filter(is_("back")).alias("backs"))
+        .agg(
+            pl.col("ts").filter(is_("click")).alias("clicks"),
+            pl.col("ts").filter(is_("back")).alias("backs"),
+        )
     )
     good = [
         any(not any(c < b <= c + dt.timedelta(seconds=30) for b in backs) for c in clicks)
@@ -85,15 +92,21 @@ def reference(events: pl.DataFrame, experiment: str) -> dict[str, dict[str, tupl
     table = table.join(sess, left_on="unit_id", right_on="cookie_id", how="left").with_columns(
         pl.col("good").fill_null(0), pl.col("n_sess").fill_null(0)
     )
-    latency = ev.filter(is_("page_load") & pl.col("latency_ms").is_not_null()).group_by(
-        "cookie_id").agg(pl.col("latency_ms").mean().alias("lat"))
+    latency = (
+        ev.filter(is_("page_load") & pl.col("latency_ms").is_not_null())
+        .group_by("cookie_id")
+        .agg(pl.col("latency_ms").mean().alias("lat"))
+    )
     out: dict[str, dict[str, tuple[float, int]]] = {}
     for variant, frame in table.group_by("variant"):
         v = str(variant[0])
         n = frame.height
         for name in (*cols, "buyer_share", "net_value"):
             out.setdefault(name, {})[v] = (float(frame[name].cast(pl.Float64).mean()), n)
-        out.setdefault("click_through", {})[v] = (frame["clicks"].sum() / frame["impressions"].sum(), n)
+        out.setdefault("click_through", {})[v] = (
+            frame["clicks"].sum() / frame["impressions"].sum(),
+            n,
+        )
         out.setdefault("session_success", {})[v] = (frame["good"].sum() / frame["n_sess"].sum(), n)
         lat = frame.join(latency, left_on="unit_id", right_on="cookie_id")
         out.setdefault("page_latency", {})[v] = (float(lat["lat"].mean()), lat.height)
@@ -105,7 +118,9 @@ def scorecards(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     out = {}
     for name in DEMO_EXPERIMENTS:
         target = tmp_path_factory.mktemp(name) / "out"
-        result = CliRunner().invoke(app, ["run", str(PIPELINES / f"{name}.toml"), "--out", str(target)])
+        result = CliRunner().invoke(
+            app, ["run", str(PIPELINES / f"{name}.toml"), "--out", str(target)]
+        )
         assert result.exit_code == 0, result.output
         out[name] = target
     return out
@@ -143,8 +158,15 @@ def test_aa_has_no_sample_ratio_mismatch(scorecards: dict[str, Path]) -> None:
 def test_every_row_is_stamped_and_holds_no_unit_ids(scorecards: dict[str, Path]) -> None:
     card_path = scorecards["checkout_layout"]
     table = pl.read_parquet(card_path / "scorecard.parquet")
-    for column in ("bot_filter", "bot_filter_version", "bot_filter_sha256", "definitions_sha256",
-                   "spec_sha256", "inputs_fingerprint", "tool_version"):
+    for column in (
+        "bot_filter",
+        "bot_filter_version",
+        "bot_filter_sha256",
+        "definitions_sha256",
+        "spec_sha256",
+        "inputs_fingerprint",
+        "tool_version",
+    ):
         assert table[column].null_count() == 0
     some_units = pl.read_parquet(SAMPLE / "exposures.parquet")["unit_id"].unique().head(500)
     for name in ("scorecard.json", "scorecard.parquet"):

@@ -12,7 +12,9 @@ from metricforge.schema import EVENT_COLUMNS
 
 
 def parse(text: str) -> str:
-    return parse_expression(text, columns=EVENT_COLUMNS, file="defs.toml", key="metric.m.where").sql()
+    return parse_expression(
+        text, columns=EVENT_COLUMNS, file="defs.toml", key="metric.m.where"
+    ).sql()
 
 
 @pytest.mark.parametrize(

@@ -41,7 +41,9 @@ def nist_values(name: str) -> list[float]:
     return values
 
 
-@pytest.mark.parametrize(("name", "mean", "sd", "tol_mean", "tol_sd"), CASES, ids=[c[0] for c in CASES])
+@pytest.mark.parametrize(
+    ("name", "mean", "sd", "tol_mean", "tol_sd"), CASES, ids=[c[0] for c in CASES]
+)
 def test_certified_values_survive_the_pipeline(
     tmp_path: Path, name: str, mean: float, sd: float, tol_mean: float, tol_sd: float
 ) -> None:

@@ -13,7 +13,11 @@ from tests.conftest import SAMPLE
 
 
 def _files(folder: Path) -> dict[str, bytes]:
-    return {p.relative_to(folder).as_posix(): p.read_bytes() for p in sorted(folder.rglob("*")) if p.is_file()}
+    return {
+        p.relative_to(folder).as_posix(): p.read_bytes()
+        for p in sorted(folder.rglob("*"))
+        if p.is_file()
+    }
 
 
 def test_same_seed_same_bytes_other_seed_other_bytes(tmp_path: Path) -> None:

@@ -30,7 +30,9 @@ def test_srm_worked_examples(observed, weights, chi2, df, p) -> None:  # type: i
     assert result.p_value == pytest.approx(p, rel=2e-3)
 
 
-@pytest.mark.parametrize("bad", [((1,), (1.0,)), ((5, 5), (1.0,)), ((-1, 5), (1, 1)), ((0, 0), (1, 1)), ((5, 5), (0, 1))])
+@pytest.mark.parametrize(
+    "bad", [((1,), (1.0,)), ((5, 5), (1.0,)), ((-1, 5), (1, 1)), ((0, 0), (1, 1)), ((5, 5), (0, 1))]
+)
 def test_srm_rejects_bad_input(bad) -> None:  # type: ignore[no-untyped-def]
     with pytest.raises(StatsError):
         srm_test(*bad)
@@ -39,8 +41,14 @@ def test_srm_rejects_bad_input(bad) -> None:  # type: ignore[no-untyped-def]
 def _moments(x: np.ndarray, y: np.ndarray | None = None, ddof: int = 1) -> Moments:
     if y is None:
         return Moments.of_mean(len(x), float(x.mean()), float(x.var(ddof=ddof)))
-    return Moments(len(x), float(x.mean()), float(y.mean()), float(x.var(ddof=ddof)),
-                   float(y.var(ddof=ddof)), float(np.cov(x, y, ddof=ddof)[0, 1]))
+    return Moments(
+        len(x),
+        float(x.mean()),
+        float(y.mean()),
+        float(x.var(ddof=ddof)),
+        float(y.var(ddof=ddof)),
+        float(np.cov(x, y, ddof=ddof)[0, 1]),
+    )
 
 
 @pytest.mark.parametrize("seed", [1, 2, 3])
@@ -103,7 +111,10 @@ def test_mean_metric_variance_is_var_over_n(n: int, mean: float, var: float) -> 
     assert v == pytest.approx(var / n, rel=1e-12)
 
 
-@given(a=st.tuples(st.integers(2, 5000), finite, positive), b=st.tuples(st.integers(2, 5000), finite, positive))
+@given(
+    a=st.tuples(st.integers(2, 5000), finite, positive),
+    b=st.tuples(st.integers(2, 5000), finite, positive),
+)
 def test_compare_is_antisymmetric_and_ci_holds_point(a, b) -> None:  # type: ignore[no-untyped-def]
     ta, tb = Moments.of_mean(*a), Moments.of_mean(*b)
     ab, ba = compare(ta, tb), compare(tb, ta)
@@ -126,7 +137,9 @@ def test_ratio_with_zero_denominator_is_an_error() -> None:
         ratio_point_and_variance(Moments(10, 0.0, 0.0, 0.0, 0.0, 0.0))
 
 
-def _coverage(rng: np.random.Generator, ratio: bool, effect: float, runs: int = 2000) -> tuple[float, float]:
+def _coverage(
+    rng: np.random.Generator, ratio: bool, effect: float, runs: int = 2000
+) -> tuple[float, float]:
     """Share of runs whose 95% CI covers the truth, and share with p < 0.05."""
     n = 500
     covered = rejected = 0
