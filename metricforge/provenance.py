@@ -63,5 +63,5 @@ def library_versions() -> dict[str, str]:
         "numpy": numpy.__version__,
         "pyarrow": pyarrow.__version__,
         "scipy": scipy.__version__,
-        "sqlglot": sqlglot.__version__,
+        "sqlglot": str(getattr(sqlglot, "__version__", "unknown")),
     }

@@ -8,6 +8,7 @@ from pathlib import Path
 
 import pyarrow as pa
 
+from metricforge.compile.expressions import columns_of
 from metricforge.compile.query import compile_plan, result_columns
 from metricforge.engines.base import Engine, EngineInputs
 from metricforge.errors import InputDataError
@@ -44,7 +45,7 @@ def needed_event_columns(plan: Plan) -> tuple[str, ...]:
     for metric in plan.metrics:
         for tree in (metric.where, metric.value):
             if tree is not None:
-                cols |= {c.name for c in tree.find_all(__import__("sqlglot").exp.Column)}
+                cols |= columns_of(tree)
         if metric.kind is Kind.DWELL_SUCCESS:
             cols.add("session_id")
     cols.add("session_id")
@@ -97,7 +98,8 @@ def reshape(plan: Plan, stamp: Stamp, files: list[InputFile], table: pa.Table) -
     unknown = sorted(seen - set(spec.variant_names))
     if unknown:
         raise InputDataError(
-            f"variant '{unknown[0]}' is in the exposure log but not in the spec {list(spec.variant_names)}",
+            f"variant '{unknown[0]}' is in the exposure log but not in the spec"
+            f" {list(spec.variant_names)}",
             file=exposures_file,
             key="variant",
         )

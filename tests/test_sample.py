@@ -35,21 +35,23 @@ def test_committed_sample_is_the_default_regeneration(tmp_path: Path) -> None:
 
 def _query(sql: str) -> list[tuple[object, ...]]:
     con = duckdb.connect()
-    con.execute("SET VARIABLE root = ?", [str(SAMPLE)])
-    return con.execute(sql.replace("ROOT", str(SAMPLE))).fetchall()
+    events = f"read_parquet('{SAMPLE}/events/*/*.parquet')"
+    exposures = f"read_parquet('{SAMPLE}/exposures.parquet')"
+    return con.execute(sql.replace("EV", events).replace("EX", exposures)).fetchall()
 
 
 def test_bot_share_is_between_30_and_50_percent() -> None:
     """Bots counted independently: bot user agents, huge sessions or sub-second backs."""
     (share,) = _query(
         """
-        WITH e AS (SELECT * FROM read_parquet('ROOT/events/*/*.parquet')),
+        WITH e AS (SELECT * FROM EV),
         s AS (SELECT cookie_id, session_id, count(*) n FROM e GROUP BY ALL),
         clicks AS (SELECT cookie_id, ts, event,
                    lead(ts) OVER (PARTITION BY session_id ORDER BY ts) AS next_ts,
                    lead(event) OVER (PARTITION BY session_id ORDER BY ts) AS next_event FROM e),
         bots AS (
-          SELECT cookie_id FROM e WHERE regexp_matches(lower(user_agent), 'bot|crawler|spider|headless')
+          SELECT cookie_id FROM e
+          WHERE regexp_matches(lower(user_agent), 'bot|crawler|spider|headless')
           UNION SELECT cookie_id FROM s WHERE n > 200
           UNION SELECT cookie_id FROM clicks WHERE event = 'click' AND next_event = 'back'
                 AND next_ts - ts < INTERVAL 1 SECOND)
@@ -63,10 +65,10 @@ def test_bot_share_is_between_30_and_50_percent() -> None:
 
 def test_pre_period_of_14_days_before_every_exposure() -> None:
     (first_event, first_exposure, days_before) = _query(
-        """SELECT (SELECT min(ts) FROM read_parquet('ROOT/events/*/*.parquet')),
-                  (SELECT min(ts) FROM read_parquet('ROOT/exposures.parquet')),
-                  (SELECT count(DISTINCT date_trunc('day', ts)) FROM read_parquet('ROOT/events/*/*.parquet')
-                   WHERE ts < (SELECT min(ts) FROM read_parquet('ROOT/exposures.parquet')))"""
+        """SELECT (SELECT min(ts) FROM EV),
+                  (SELECT min(ts) FROM EX),
+                  (SELECT count(DISTINCT date_trunc('day', ts)) FROM EV
+                   WHERE ts < (SELECT min(ts) FROM EX))"""
     )[0]
     assert first_event < first_exposure  # type: ignore[operator]
     assert days_before == 14
@@ -74,9 +76,9 @@ def test_pre_period_of_14_days_before_every_exposure() -> None:
 
 def test_cookie_changes_and_repeated_exposures_exist() -> None:
     (accounts_with_two_cookies, repeated) = _query(
-        """SELECT (SELECT count(*) FROM (SELECT account_id FROM read_parquet('ROOT/events/*/*.parquet')
+        """SELECT (SELECT count(*) FROM (SELECT account_id FROM EV
                    WHERE account_id IS NOT NULL GROUP BY 1 HAVING count(DISTINCT cookie_id) > 1)),
-                  (SELECT count(*) FROM (SELECT unit_id, experiment FROM read_parquet('ROOT/exposures.parquet')
+                  (SELECT count(*) FROM (SELECT unit_id, experiment FROM EX
                    GROUP BY ALL HAVING count(*) > 1))"""
     )[0]
     assert accounts_with_two_cookies > 0  # type: ignore[operator]

@@ -21,7 +21,7 @@ MAX_STRING_LITERAL = 500
 MAX_NUMBER_LITERAL = 30
 
 # Structural nodes: comparisons, boolean logic, arithmetic, literals, CASE.
-_ALLOWED_NODES: tuple[type[exp.Expression], ...] = (
+_ALLOWED_NODES: tuple[type[exp.Expr], ...] = (
     exp.Column,
     exp.Identifier,
     exp.Literal,
@@ -55,7 +55,7 @@ _ALLOWED_NODES: tuple[type[exp.Expression], ...] = (
 )
 
 # Scalar functions, by sqlglot node type, with the name users write.
-_ALLOWED_FUNCTIONS: dict[type[exp.Expression], str] = {
+_ALLOWED_FUNCTIONS: dict[type[exp.Expr], str] = {
     exp.Lower: "lower",
     exp.Upper: "upper",
     exp.Length: "length",
@@ -83,7 +83,7 @@ _ALLOWED_CASTS = frozenset(
 ALLOWED_FUNCTION_NAMES = tuple(sorted(_ALLOWED_FUNCTIONS.values()))
 
 
-def _name_of(node: exp.Expression) -> str:
+def _name_of(node: exp.Expr) -> str:
     if isinstance(node, exp.Anonymous):
         return str(node.name).lower()
     if isinstance(node, exp.Func):
@@ -91,9 +91,9 @@ def _name_of(node: exp.Expression) -> str:
     return type(node).__name__.lower()
 
 
-def _depth(node: exp.Expression) -> int:
+def _depth(node: exp.Expr) -> int:
     deepest = 0
-    stack: list[tuple[exp.Expression, int]] = [(node, 1)]
+    stack: list[tuple[exp.Expr, int]] = [(node, 1)]
     while stack:
         current, level = stack.pop()
         deepest = max(deepest, level)
@@ -110,7 +110,7 @@ def parse_expression(
     file: str,
     key: str,
     line: int | None = None,
-) -> exp.Expression:
+) -> exp.Expr:
     """Parse ``text`` into a checked sqlglot tree; raise ExpressionError otherwise.
 
     ``columns`` maps the allowed column names to their logical types.
@@ -143,7 +143,7 @@ def parse_expression(
     return tree
 
 
-def _check_node(node: exp.Expression, columns: Mapping[str, str], fail: object) -> None:
+def _check_node(node: exp.Expr, columns: Mapping[str, str], fail: object) -> None:
     assert callable(fail)
     if node.comments:
         raise fail("comments are not allowed in expressions")
@@ -175,14 +175,14 @@ def _check_node(node: exp.Expression, columns: Mapping[str, str], fail: object) 
             raise fail(f"cast to {target.sql()} is not allowed")
 
 
-def columns_of(tree: exp.Expression) -> frozenset[str]:
+def columns_of(tree: exp.Expr) -> frozenset[str]:
     return frozenset(c.name for c in tree.find_all(exp.Column))
 
 
-def qualify(tree: exp.Expression, table: str) -> exp.Expression:
+def qualify(tree: exp.Expr, table: str) -> exp.Expr:
     """A copy of ``tree`` with every column qualified by ``table``."""
 
-    def add_table(node: exp.Expression) -> exp.Expression:
+    def add_table(node: exp.Expr) -> exp.Expr:
         if isinstance(node, exp.Column):
             return exp.column(node.name, table=table)
         return node

@@ -58,30 +58,28 @@ def _col(name: str, table: str | None = None) -> exp.Column:
     return exp.column(name, table=table)
 
 
-def _lit(value: str | int | float) -> exp.Expression:
+def _lit(value: str | int | float) -> exp.Expr:
     if isinstance(value, str):
         return exp.Literal.string(value)
     return exp.Literal.number(value)
 
 
-def _ts(value: dt.datetime) -> exp.Expression:
+def _ts(value: dt.datetime) -> exp.Expr:
     return exp.cast(exp.Literal.string(value.isoformat(sep=" ")), "TIMESTAMP")
 
 
-def _case(
-    cond: exp.Expression, then: exp.Expression, default: exp.Expression | None = None
-) -> exp.Case:
+def _case(cond: exp.Expr, then: exp.Expr, default: exp.Expr | None = None) -> exp.Case:
     case = exp.Case().when(cond, then)
     return case.else_(default) if default is not None else case
 
 
-def _and(*parts: exp.Expression | None) -> exp.Expression:
+def _and(*parts: exp.Expr | None) -> exp.Expr:
     kept = [p for p in parts if p is not None]
     return exp.and_(*kept) if kept else exp.true()
 
 
-def _event_condition(metric: MetricDef, events: str) -> exp.Expression:
-    kinds: exp.Expression | None = None
+def _event_condition(metric: MetricDef, events: str) -> exp.Expr:
+    kinds: exp.Expr | None = None
     if metric.events:
         kinds = _col("event", events).isin(*[_lit(e) for e in metric.events])
     where = exp.paren(qualify(metric.where, events)) if metric.where is not None else None
@@ -154,7 +152,7 @@ class _Builder:
             )
         )
 
-    def _rule_flag(self, rule: BotRule, e: str) -> exp.Expression | None:
+    def _rule_flag(self, rule: BotRule, e: str) -> exp.Expr | None:
         if rule.kind is RuleKind.USER_AGENT:
             ua = exp.Lower(this=_col("user_agent", e))
             hits = [exp.StrPosition(this=ua, substr=_lit(t)) > _lit(0) for t in rule.tokens]
@@ -163,7 +161,7 @@ class _Builder:
             return _col("ip_hash", e).isin(*[_lit(t) for t in rule.tokens])
         return None  # unit-level rules are applied in `classified`
 
-    def _session_parts(self, metric: MetricDef, e: str) -> list[exp.Expression]:
+    def _session_parts(self, metric: MetricDef, e: str) -> list[exp.Expr]:
         s = f"s_{metric.name}"
         cond = _event_condition(metric, e)
         if metric.kind in (Kind.COUNT, Kind.PROPORTION):
@@ -171,7 +169,7 @@ class _Builder:
         if metric.kind in (Kind.SUM, Kind.MEAN):
             assert metric.value is not None
             value = exp.cast(qualify(metric.value, e), EXACT)
-            parts: list[exp.Expression] = [exp.alias_(exp.Sum(this=_case(cond, value)), s)]
+            parts: list[exp.Expr] = [exp.alias_(exp.Sum(this=_case(cond, value)), s)]
             if metric.kind is Kind.MEAN:
                 has = _and(cond, qualify(metric.value, e).is_(exp.null()).not_())
                 parts.append(exp.alias_(exp.Count(this=_case(has, _lit(1))), f"c_{metric.name}"))
@@ -180,11 +178,11 @@ class _Builder:
             return [exp.alias_(self._dwell_success(metric, e), s)]
         return []  # ratio and composite are built from other metrics' per-unit columns
 
-    def _dwell_success(self, metric: MetricDef, e: str) -> exp.Expression:
+    def _dwell_success(self, metric: MetricDef, e: str) -> exp.Expr:
         """1 when the session has a click with no back within the threshold after it."""
         where = qualify(metric.where, e) if metric.where is not None else None
 
-        def times(event: str) -> tuple[exp.Expression, exp.Expression]:
+        def times(event: str) -> tuple[exp.Expr, exp.Expr]:
             cond = _and(_col("event", e).eq(_lit(event)), where)
             listed = exp.Filter(
                 this=exp.ArrayAgg(this=exp.UnixMillis(this=_col("ts", e))),
@@ -238,7 +236,7 @@ class _Builder:
             select = select.select(*self._unit_parts(metric))
         return select.from_("sessions").group_by(_col("unit"), _col("variant"), _col("n_variants"))
 
-    def _unit_parts(self, metric: MetricDef) -> list[exp.Expression]:
+    def _unit_parts(self, metric: MetricDef) -> list[exp.Expr]:
         s, u = _col(f"s_{metric.name}"), f"u_{metric.name}"
         total = exp.Coalesce(this=exp.Sum(this=s), expressions=[_lit(0)])
         if metric.kind is Kind.COUNT:
@@ -261,7 +259,7 @@ class _Builder:
         return []
 
     # -- stage 4 -------------------------------------------------------------------------
-    def _per_unit(self, name: str) -> exp.Expression:
+    def _per_unit(self, name: str) -> exp.Expr:
         """A per-unit metric's value as a DOUBLE expression over the `units` columns."""
         metric = self.plan.metric(name)
         if metric.kind is Kind.COMPOSITE:
@@ -272,14 +270,14 @@ class _Builder:
                 )
                 for t, w in metric.terms
             ]
-            total = terms[0]
+            total: exp.Expr = terms[0]
             for term in terms[1:]:
                 total = exp.Add(this=total, expression=term)
             return exp.paren(total)
         return exp.cast(_col(f"u_{name}"), DOUBLE)
 
     def classified(self) -> exp.Select:
-        flags: list[exp.Expression] = []
+        flags: list[exp.Expr] = []
         for i, rule in enumerate(self.plan.bot_filter.rules):
             if rule.kind in (RuleKind.USER_AGENT, RuleKind.DENY_IP):
                 flags.append(_col(f"bot_rule_{i}").eq(_lit(1)))
@@ -310,12 +308,12 @@ class _Builder:
         return select.from_("units")
 
     # -- stage 5 -------------------------------------------------------------------------
-    def _agg(self, cls: type[exp.Func], col: str, other: str | None = None) -> exp.Expression:
-        this: exp.Expression = _col(col)
+    def _agg(self, cls: type[exp.Func], col: str, other: str | None = None) -> exp.Expr:
+        this: exp.Expr = _col(col)
         if self.ordered and other is None:
             this = exp.Order(this=this, expressions=[exp.Ordered(this=_col("unit"))])
         if other is not None:
-            second: exp.Expression = _col(other)
+            second: exp.Expr = _col(other)
             if self.ordered:
                 second = exp.Order(this=second, expressions=[exp.Ordered(this=_col("unit"))])
             return cls(this=this, expression=second)

@@ -15,7 +15,7 @@ from metricforge.errors import EngineError
 DEFAULT_MEMORY_LIMIT = "4GB"
 
 
-def _set(name: str, value: exp.Expression) -> str:
+def _set(name: str, value: exp.Expr) -> str:
     item = exp.SetItem(this=exp.EQ(this=exp.column(name), expression=value))
     return exp.Set(expressions=[item]).sql(dialect="duckdb")
 
@@ -39,7 +39,7 @@ class DuckDBEngine:
         return str(duckdb.__version__)
 
     def _connect(self, inputs: EngineInputs, temp_dir: Path) -> duckdb.DuckDBPyConnection:
-        config: dict[str, str | bool | int] = {
+        config: dict[str, str | bool | int | float | list[str]] = {
             "autoinstall_known_extensions": False,
             "autoload_known_extensions": False,
             "memory_limit": self.memory_limit,

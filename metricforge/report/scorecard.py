@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import math
 from dataclasses import dataclass
 from typing import Any
@@ -92,10 +93,8 @@ def _effect_fields(data: RunData, metric: str, variant: str) -> tuple[dict[str, 
     except StatsError as err:
         fields: dict[str, Any] = {f: float("nan") for f in _EFFECT_FIELDS}
         for name, v in (("value", variant), ("control_value", control)):
-            try:
+            with contextlib.suppress(StatsError):
                 fields[name] = ratio_point_and_variance(moments[v])[0]
-            except StatsError:
-                pass
         return fields, f"not computed: {err.message}"
     return {f: float(getattr(effect, f)) for f in _EFFECT_FIELDS}, effect.method
 

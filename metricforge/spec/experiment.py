@@ -102,7 +102,7 @@ def load_spec(path: Path) -> ExperimentSpec:
         seen.add(name)
     return ExperimentSpec(
         name=ex.req_str("name"),
-        description=ex.str("description", "") or "",
+        description=ex.text("description", "") or "",
         path=path,
         sha256=toml.sha256,
         text=toml.text,

@@ -69,7 +69,7 @@ def _load_metric(toml: TomlFile, name: str) -> MetricDef:
             f"unknown metric kind '{kind_text}'", "kind", suggestion=closest(kind_text, names)
         ) from None
     sec.check_keys(_KEYS[kind])
-    direction_text = sec.str("direction", "higher")
+    direction_text = sec.text("direction", "higher")
     try:
         direction = Direction(direction_text)
     except ValueError:
@@ -85,7 +85,7 @@ def _load_metric(toml: TomlFile, name: str) -> MetricDef:
                 )
         fields["events"] = events
     if sec.has("where"):
-        text = sec.str("where")
+        text = sec.text("where")
         fields["where_text"] = text
         fields["where"] = parse_expression(
             text,
@@ -129,8 +129,8 @@ def _load_metric(toml: TomlFile, name: str) -> MetricDef:
         kind=kind,
         origin=origin,
         direction=direction,
-        unit_label=sec.str("unit_label", "") or "",
-        description=sec.str("description", "") or "",
+        unit_label=sec.text("unit_label", "") or "",
+        description=sec.text("description", "") or "",
         raw=dict(sec.table),
         **fields,  # type: ignore[arg-type]
     )

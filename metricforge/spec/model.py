@@ -50,9 +50,9 @@ class MetricDef:
     kind: Kind
     origin: Origin
     events: tuple[str, ...] = ()  # event types that count; empty = any event
-    where: exp.Expression | None = None  # parsed, whitelisted event filter
+    where: exp.Expr | None = None  # parsed, whitelisted event filter
     where_text: str | None = None
-    value: exp.Expression | None = None  # parsed value expression (sum, mean)
+    value: exp.Expr | None = None  # parsed value expression (sum, mean)
     value_text: str | None = None
     numerator: str | None = None  # ratio parts: names of per-unit metrics
     denominator: str | None = None

@@ -114,7 +114,7 @@ class Section:
             raise self.error(f"expected {what}, got {type(value).__name__}", key)
         return value
 
-    def str(self, key: str, default: Any = None) -> Any:
+    def text(self, key: str, default: Any = None) -> Any:
         return self._get(key, str, "a string", default)
 
     def req_str(self, key: str) -> str:
