@@ -10,7 +10,8 @@ from typer.testing import CliRunner
 ROOT = Path(__file__).resolve().parent.parent
 PIPELINES = ROOT / "pipelines"
 SAMPLE = ROOT / "sample_data"
-REFERENCE = ROOT.parent / "shared" / "reference_data"
+# Verbatim copies of the NIST StRD files (see nist/SOURCES.txt and SHA256SUMS.txt).
+REFERENCE = ROOT / "tests" / "reference_data"
 DEMO_EXPERIMENTS = ("checkout_layout", "homepage_aa", "promo_banner", "image_autoload")
 
 
