@@ -8,6 +8,7 @@ REFERENCES.md states: relative 1e-7 for the standard deviation of NumAcc3/NumAcc
 
 from __future__ import annotations
 
+import hashlib
 import math
 from pathlib import Path
 
@@ -19,12 +20,12 @@ from metricforge.spec import load_plan
 from tests.conftest import REFERENCE, event, exposure, write_case
 
 CASES = [
-    # file, certified mean, certified s, rel tol of mean, rel tol of s
-    ("NumAcc3.dat", 1000000.2, 0.1, 1e-12, 1e-7),
-    ("NumAcc4.dat", 10000000.2, 0.1, 1e-12, 1e-7),
-    ("Lew.dat", -177.435, 277.332168044316, 1e-12, 1e-12),
-    ("Michelso.dat", 299.852400000000, 0.0790105478190518, 1e-12, 1e-9),
-    ("Mavro.dat", 2.00185600000000, 0.000429123454003053, 1e-12, 1e-9),
+    # file, n, certified mean, certified s, rel tol of mean, rel tol of s
+    ("NumAcc3.dat", 1001, 1000000.2, 0.1, 1e-12, 1e-7),
+    ("NumAcc4.dat", 1001, 10000000.2, 0.1, 1e-12, 1e-7),
+    ("Lew.dat", 200, -177.435, 277.332168044316, 1e-12, 1e-12),
+    ("Michelso.dat", 100, 299.852400000000, 0.0790105478190518, 1e-12, 1e-9),
+    ("Mavro.dat", 50, 2.00185600000000, 0.000429123454003053, 1e-12, 1e-9),
 ]
 
 
@@ -42,12 +43,13 @@ def nist_values(name: str) -> list[float]:
 
 
 @pytest.mark.parametrize(
-    ("name", "mean", "sd", "tol_mean", "tol_sd"), CASES, ids=[c[0] for c in CASES]
+    ("name", "n", "mean", "sd", "tol_mean", "tol_sd"), CASES, ids=[c[0] for c in CASES]
 )
 def test_certified_values_survive_the_pipeline(
-    tmp_path: Path, name: str, mean: float, sd: float, tol_mean: float, tol_sd: float
+    tmp_path: Path, name: str, n: int, mean: float, sd: float, tol_mean: float, tol_sd: float
 ) -> None:
     values = nist_values(name)
+    assert len(values) == n
     events, exposures = [], []
     for arm in ("control", "treatment"):
         for i, value in enumerate(values):
@@ -60,3 +62,11 @@ def test_certified_values_survive_the_pipeline(
     assert moments.n == len(values)
     assert moments.mean_x == pytest.approx(mean, rel=tol_mean)
     assert math.sqrt(moments.var_x) == pytest.approx(sd, rel=tol_sd)
+
+
+def test_vendored_files_match_their_published_hashes() -> None:
+    folder = REFERENCE / "nist"
+    for line in (folder / "SHA256SUMS.txt").read_text().splitlines():
+        if line.strip():
+            digest, name = line.split()
+            assert hashlib.sha256((folder / name).read_bytes()).hexdigest() == digest, name
