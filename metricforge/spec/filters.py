@@ -104,14 +104,7 @@ def _parse_filter(toml: object, name: str, version: int, released: str) -> BotFi
 
 
 def _parse_rule(sec: Section) -> BotRule:
-    kind_text = sec.req_str("kind")
-    try:
-        kind = RuleKind(kind_text)
-    except ValueError:
-        names = [k.value for k in RuleKind]
-        raise sec.error(
-            f"unknown rule kind '{kind_text}'", "kind", suggestion=closest(kind_text, names)
-        ) from None
+    kind = sec.choice("kind", RuleKind, "rule kind")
     if kind is RuleKind.SESSION_EVENTS:
         sec.check_keys({"kind", "max", "description"})
         limit = sec.integer("max")

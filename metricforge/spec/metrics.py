@@ -60,20 +60,9 @@ def load_library(paths: tuple[Path, ...]) -> dict[str, MetricDef]:
 
 def _load_metric(toml: TomlFile, name: str) -> MetricDef:
     sec = Section(toml, ("metric", name), toml.data["metric"][name])
-    kind_text = sec.req_str("kind")
-    try:
-        kind = Kind(kind_text)
-    except ValueError:
-        names = [k.value for k in Kind]
-        raise sec.error(
-            f"unknown metric kind '{kind_text}'", "kind", suggestion=closest(kind_text, names)
-        ) from None
+    kind = sec.choice("kind", Kind, "metric kind")
     sec.check_keys(_KEYS[kind])
-    direction_text = sec.text("direction", "higher")
-    try:
-        direction = Direction(direction_text)
-    except ValueError:
-        raise sec.error("direction must be 'higher' or 'lower'", "direction") from None
+    direction = sec.choice("direction", Direction, "direction", default="higher")
     origin = Origin(toml.name, toml.line_of("metric", name, "kind"))
     fields: dict[str, object] = {}
     if kind in (Kind.COUNT, Kind.SUM, Kind.MEAN, Kind.PROPORTION):

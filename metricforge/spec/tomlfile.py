@@ -6,10 +6,13 @@ import hashlib
 import re
 import tomllib
 from dataclasses import dataclass
+from enum import StrEnum
 from pathlib import Path
-from typing import Any
+from typing import Any, TypeVar
 
 from metricforge.errors import SpecError, closest
+
+E = TypeVar("E", bound=StrEnum)
 
 
 @dataclass(frozen=True)
@@ -137,6 +140,19 @@ class Section:
         if value is not None and not all(isinstance(v, str) for v in value):
             raise self.error("expected a list of strings", key)
         return value
+
+    def choice(self, key: str, enum: type[E], what: str, default: str | None = None) -> E:
+        """The value of ``key`` as a member of ``enum``, with a "did you mean" if unknown."""
+        text = self.req_str(key) if default is None else self.text(key, default)
+        try:
+            return enum(text)
+        except ValueError:
+            names = [m.value for m in enum]
+            raise self.error(
+                f"unknown {what} '{text}'; expected one of {names}",
+                key,
+                suggestion=closest(str(text), names),
+            ) from None
 
     def sub(self, key: str) -> Section:
         if key not in self.table:
