@@ -15,7 +15,7 @@ from metricforge.errors import InputDataError
 from metricforge.inputs import InputFile, check_columns, fingerprint, inspect, parquet_files
 from metricforge.provenance import Stamp, make_stamp
 from metricforge.schema import EVENT_COLUMNS, EXPOSURE_COLUMNS
-from metricforge.spec.model import Kind, MetricDef, Plan, RuleKind
+from metricforge.spec.model import MetricDef, Plan, RuleKind
 from metricforge.stats import Moments
 
 
@@ -41,14 +41,11 @@ class RunData:
 
 
 def needed_event_columns(plan: Plan) -> tuple[str, ...]:
-    cols = {"ts", "event", plan.spec.unit}
+    cols = {"ts", "event", "session_id", plan.spec.unit}  # sessions are the first grouping
     for metric in plan.metrics:
         for tree in (metric.where, metric.value):
             if tree is not None:
                 cols |= columns_of(tree)
-        if metric.kind is Kind.DWELL_SUCCESS:
-            cols.add("session_id")
-    cols.add("session_id")
     for rule in plan.bot_filter.rules:
         if rule.kind is RuleKind.USER_AGENT:
             cols.add("user_agent")
