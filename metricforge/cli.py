@@ -23,6 +23,7 @@ err_console = Console(stderr=True, highlight=False, soft_wrap=True)
 out_console = Console(highlight=False, width=None if sys.stdout.isatty() else 150)
 
 T = TypeVar("T")
+STRICT_EXIT = 3  # --strict: the results were written but a trust check failed
 
 
 class Dialect(StrEnum):
@@ -57,6 +58,9 @@ def run(
         str | None, typer.Option("--bot-filter", help="Run under NAME@VERSION instead.")
     ] = None,
     threads: Annotated[int | None, typer.Option(help="Engine threads (default: all).")] = None,
+    strict: Annotated[
+        bool, typer.Option("--strict", help=f"Exit with {STRICT_EXIT} when a trust check fails.")
+    ] = False,
 ) -> None:
     """Compute the scorecard of one experiment and write it to OUT, all or nothing."""
     from metricforge.engines.duckdb import DuckDBEngine
@@ -66,15 +70,19 @@ def run(
     from metricforge.runner import execute
     from metricforge.spec import load_plan
 
-    def action() -> None:
+    def action() -> bool:
         plan = load_plan(pipeline, bot_filter=bot_filter)
         data = execute(plan, DuckDBEngine(threads=threads))
         card = build(data)
         write_outputs(out, data, card)
         render(card, out_console)
         out_console.print(f"wrote {out}/scorecard.parquet, scorecard.json, manifest.json")
+        return card.trust["verdict"] == "pass"
 
-    _guard(action)
+    trusted = _guard(action)
+    if strict and not trusted:
+        err_console.print("error: a trust check failed (see the trust section)", markup=False)
+        raise typer.Exit(STRICT_EXIT)
 
 
 @app.command()
@@ -108,6 +116,28 @@ def check(pipeline: PipelineArg) -> None:
             f"ok: {plan.spec.name}: {len(plan.reported)} metrics, filter {plan.bot_filter.ref},"
             f" {len(files)} input files, {sum(f.rows for f in files)} rows"
         )
+
+    _guard(action)
+
+
+@app.command()
+def filters(
+    folder: Annotated[Path, typer.Argument(help="Folder of bot-filter versions.")] = Path(
+        "metric_defs/filters"
+    ),
+) -> None:
+    """List the released bot-filter versions with their hashes and release dates."""
+    from rich.table import Table
+
+    from metricforge.spec.filters import released_versions
+
+    def action() -> None:
+        table = Table("filter", "released", "sha256")
+        for entry in released_versions(folder):
+            table.add_row(
+                f"{entry['name']}@{entry['version']}", str(entry["released"]), str(entry["sha256"])
+            )
+        out_console.print(table)
 
     _guard(action)
 

@@ -12,6 +12,7 @@ import pyarrow as pa
 from metricforge.errors import StatsError
 from metricforge.runner import RunData
 from metricforge.stats import Effect, compare, ratio_point_and_variance, srm_test
+from metricforge.stats.independence import share_differs
 
 SCORECARD_SCHEMA = pa.schema(
     [
@@ -163,7 +164,14 @@ def variant_section(data: RunData) -> list[dict[str, Any]]:
 
 def trust_section(data: RunData) -> dict[str, Any]:
     spec = data.plan.spec
-    observed = [data.counts[v].units for v in spec.variant_names]
+    names = spec.variant_names
+    # Sample ratio on every exposed unit: the assignment itself, before any filtering.
+    # An imbalance that the bot filter creates is the next check's job.
+    exposed = [
+        data.counts[v].units + data.counts[v].bot_units + data.counts[v].contaminated_units
+        for v in names
+    ]
+    observed = exposed
     srm = srm_test(observed, [s for _, s in spec.variants])
     checks = [
         {
@@ -178,6 +186,20 @@ def trust_section(data: RunData) -> dict[str, Any]:
             "passed": bool(srm.p_value >= spec.srm_alpha),
         }
     ]
+    bots = [data.counts[v].bot_units for v in names]
+    shares = [f"{v} {b / e:.2%}" for v, b, e in zip(names, bots, exposed, strict=True) if e]
+    bot_test = share_differs(bots, exposed)
+    checks.append(
+        {
+            "check": "bot_share_by_variant",
+            "figure": ", ".join(shares) + f"; chi2={bot_test.chi2:.4g}, p={bot_test.p_value:.4g}",
+            "p_value": bot_test.p_value,
+            "threshold": spec.srm_alpha,
+            "bot_units": dict(zip(names, bots, strict=True)),
+            "exposed_units": dict(zip(names, exposed, strict=True)),
+            "passed": bool(bot_test.p_value >= spec.srm_alpha),
+        }
+    )
     return {
         "verdict": "pass" if all(c["passed"] for c in checks) else "fail",
         "checks": checks,
