@@ -77,7 +77,7 @@ def run(
         write_outputs(out, data, card)
         render(card, out_console)
         out_console.print(f"wrote {out}/scorecard.parquet, scorecard.json, manifest.json")
-        return card.trust["verdict"] == "pass"
+        return bool(card.trust["verdict"] == "pass")
 
     trusted = _guard(action)
     if strict and not trusted:
