@@ -7,6 +7,7 @@ from dataclasses import dataclass
 
 from scipy import stats as st
 
+from metricforge.errors import StatsError
 from metricforge.stats.moments import Moments, ratio_point_and_variance
 
 
@@ -24,55 +25,59 @@ class Effect:
     method: str
 
 
-def _degenerate(diff: float) -> tuple[float, float, float]:
-    """Both arms without variance: the difference is known exactly."""
-    return (1.0 if diff == 0 else 0.0), diff, diff
-
-
 def welch_df(v_t: float, n_t: int, v_c: float, n_c: int) -> float:
     """Welch–Satterthwaite degrees of freedom from the per-arm estimator variances."""
-    num = (v_t + v_c) ** 2
-    den = v_t**2 / (n_t - 1) + v_c**2 / (n_c - 1)
-    return num / den if den > 0 else math.inf
+    total = v_t + v_c
+    if total == 0:
+        return math.inf
+    w_t, w_c = v_t / total, v_c / total  # scale-free: no under/overflow of the squares
+    return 1.0 / (w_t * w_t / (n_t - 1) + w_c * w_c / (n_c - 1))
+
+
+def _relative(
+    t_val: float, v_t: float, c_val: float, v_c: float, z: float
+) -> tuple[float, float, float]:
+    """t/c − 1 with Var ≈ V_t/c² + t²V_c/c⁴ (independent arms).
+
+    NaN when c is 0, or so close to 0 that t/c overflows.
+    """
+    ratio = t_val / c_val if c_val != 0 else math.inf
+    if not math.isfinite(ratio):
+        return math.nan, math.nan, math.nan
+    se = math.hypot(math.sqrt(v_t), ratio * math.sqrt(v_c)) / abs(c_val)
+    half = z * se if se > 0 else 0.0
+    rel = ratio - 1.0
+    return rel, rel - half, rel + half
 
 
 def compare(treatment: Moments, control: Moments, *, alpha: float = 0.05) -> Effect:
     """Welch t for per-unit means, the delta method (z) for ratios; relative effect by delta."""
+    if not 0.0 < alpha < 1.0:
+        raise StatsError(f"alpha must lie strictly between 0 and 1, is {alpha}")
     t_val, v_t = ratio_point_and_variance(treatment)
     c_val, v_c = ratio_point_and_variance(control)
     diff = t_val - c_val
     se = math.sqrt(v_t + v_c)
     ratio = treatment.is_ratio or control.is_ratio
-    method = "delta" if ratio else "welch"
-    if se == 0:
-        p, low, high = _degenerate(diff)
+    z = float(st.norm.ppf(1.0 - alpha / 2.0))
+    if se == 0:  # both arms without variance: the difference is known exactly
+        p, half = (1.0 if diff == 0 else 0.0), 0.0
     elif ratio:
-        z = st.norm.ppf(1 - alpha / 2)
-        p = float(2 * st.norm.sf(abs(diff) / se))
-        low, high = diff - z * se, diff + z * se
+        p, half = 2.0 * float(st.norm.sf(abs(diff) / se)), z * se
     else:
         df = welch_df(v_t, treatment.n, v_c, control.n)
-        q = st.t.ppf(1 - alpha / 2, df)
-        p = float(2 * st.t.sf(abs(diff) / se, df))
-        low, high = diff - q * se, diff + q * se
-    rel = rel_low = rel_high = math.nan
-    if abs(c_val) > 1e-150:
-        ratio_tc = t_val / c_val
-        rel_var = (v_t + ratio_tc**2 * v_c) / c_val**2 if abs(ratio_tc) < 1e150 else math.inf
-        if math.isfinite(rel_var):
-            rel_se = math.sqrt(rel_var)
-            z = st.norm.ppf(1 - alpha / 2)
-            rel = ratio_tc - 1.0
-            rel_low, rel_high = rel - z * rel_se, rel + z * rel_se
+        p = 2.0 * float(st.t.sf(abs(diff) / se, df))
+        half = float(st.t.ppf(1.0 - alpha / 2.0, df)) * se
+    rel, rel_low, rel_high = _relative(t_val, v_t, c_val, v_c, z)
     return Effect(
         value=t_val,
         control_value=c_val,
         abs_effect=diff,
-        abs_ci_low=float(low),
-        abs_ci_high=float(high),
+        abs_ci_low=diff - half,
+        abs_ci_high=diff + half,
         rel_effect=rel,
-        rel_ci_low=float(rel_low),
-        rel_ci_high=float(rel_high),
-        p_value=float(p),
-        method=method,
+        rel_ci_low=rel_low,
+        rel_ci_high=rel_high,
+        p_value=p,
+        method="delta" if ratio else "welch",
     )

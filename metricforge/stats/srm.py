@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
@@ -20,16 +21,22 @@ class SrmResult:
 
 
 def srm_test(observed: Sequence[int], planned_weights: Sequence[float]) -> SrmResult:
-    if len(observed) != len(planned_weights) or len(observed) < 2:
-        raise StatsError("observed counts and planned weights must pair up, two or more")
-    if any(o < 0 for o in observed):
-        raise StatsError("observed counts must not be negative")
-    if any(w <= 0 for w in planned_weights):
-        raise StatsError("planned weights must be positive")
-    total = sum(observed)
+    """Pearson chi-square of the unit counts against the normalised planned weights."""
+    if len(observed) != len(planned_weights):
+        raise StatsError(
+            f"{len(observed)} observed counts but {len(planned_weights)} planned weights"
+        )
+    if len(observed) < 2:
+        raise StatsError("a split needs two or more variants")
+    if any(o < 0 or o != int(o) for o in observed):
+        raise StatsError("observed counts must be whole numbers, not negative")
+    if any(not (math.isfinite(w) and w > 0) for w in planned_weights):
+        raise StatsError("planned weights must be positive and finite")
+    counts = tuple(int(o) for o in observed)
+    total = sum(counts)
     if total == 0:
         raise StatsError("no units to test")
-    weight_sum = float(sum(planned_weights))
-    expected = [total * w / weight_sum for w in planned_weights]
-    chi2, p = st.chisquare(list(observed), expected)
-    return SrmResult(float(chi2), len(observed) - 1, float(p), tuple(observed), tuple(expected))
+    weight_sum = math.fsum(planned_weights)
+    expected = tuple(total * w / weight_sum for w in planned_weights)
+    chi2, p = st.chisquare(counts, expected)
+    return SrmResult(float(chi2), len(counts) - 1, float(p), counts, expected)
