@@ -47,13 +47,16 @@ def unknown_metric(folder: Path) -> tuple[Path, list[str]]:
     ]
 
 
-def unknown_column(folder: Path) -> tuple[Path, list[str]]:
+def _with_mobile_filter(folder: Path, where: str) -> Path:
+    """A case whose library's `mobile_purchases` filter reads ``where``."""
     defs = _defs_copy(folder)
     shop = defs / "shop.toml"
-    shop.write_text(
-        shop.read_text().replace("where = \"device = 'mobile'\"", "where = \"devise = 'mobile'\"")
-    )
-    spec = write_case(folder, *_good(folder), defs=defs)
+    shop.write_text(shop.read_text().replace("where = \"device = 'mobile'\"", f'where = "{where}"'))
+    return write_case(folder, *_good(folder), defs=defs)
+
+
+def unknown_column(folder: Path) -> tuple[Path, list[str]]:
+    spec = _with_mobile_filter(folder, "devise = 'mobile'")
     return spec, [
         "shop.toml",
         "metric.mobile_purchases.where",
@@ -63,14 +66,7 @@ def unknown_column(folder: Path) -> tuple[Path, list[str]]:
 
 
 def forbidden_function(folder: Path) -> tuple[Path, list[str]]:
-    defs = _defs_copy(folder)
-    shop = defs / "shop.toml"
-    shop.write_text(
-        shop.read_text().replace(
-            "where = \"device = 'mobile'\"", "where = \"read_text('/etc/passwd') = 'x'\""
-        )
-    )
-    spec = write_case(folder, *_good(folder), defs=defs)
+    spec = _with_mobile_filter(folder, "read_text('/etc/passwd') = 'x'")
     return spec, [
         "shop.toml",
         "metric.mobile_purchases.where",
