@@ -28,6 +28,11 @@ class VariantCounts:
     bot_events: int
     contaminated_units: int
 
+    @property
+    def exposed(self) -> int:
+        """Every unit with a first exposure, before the bot filter and contamination rules."""
+        return self.units + self.bot_units + self.contaminated_units
+
 
 @dataclass
 class RunData:

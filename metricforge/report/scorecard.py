@@ -146,7 +146,6 @@ def build(data: RunData) -> Scorecard:
 def variant_section(data: RunData) -> list[dict[str, Any]]:
     out = []
     for variant, c in data.counts.items():
-        exposed = c.units + c.bot_units + c.contaminated_units
         out.append(
             {
                 "variant": variant,
@@ -155,7 +154,7 @@ def variant_section(data: RunData) -> list[dict[str, Any]]:
                 "events": c.events,
                 "bot_units": c.bot_units,
                 "bot_events": c.bot_events,
-                "bot_unit_share": c.bot_units / exposed if exposed else None,
+                "bot_unit_share": c.bot_units / c.exposed if c.exposed else None,
                 "contaminated_units": c.contaminated_units,
             }
         )
@@ -167,19 +166,15 @@ def trust_section(data: RunData) -> dict[str, Any]:
     names = spec.variant_names
     # Sample ratio on every exposed unit: the assignment itself, before any filtering.
     # An imbalance that the bot filter creates is the next check's job.
-    exposed = [
-        data.counts[v].units + data.counts[v].bot_units + data.counts[v].contaminated_units
-        for v in names
-    ]
-    observed = exposed
-    srm = srm_test(observed, [s for _, s in spec.variants])
+    exposed = [data.counts[v].exposed for v in names]
+    srm = srm_test(exposed, [s for _, s in spec.variants])
     checks = [
         {
             "check": "sample_ratio_mismatch",
             "figure": f"chi2={srm.chi2:.4g}, df={srm.df}, p={srm.p_value:.4g}",
             "p_value": srm.p_value,
             "threshold": spec.srm_alpha,
-            "observed": dict(zip(spec.variant_names, observed, strict=True)),
+            "observed": dict(zip(names, exposed, strict=True)),
             "expected": dict(
                 zip(spec.variant_names, [round(e, 6) for e in srm.expected], strict=True)
             ),
