@@ -90,13 +90,13 @@ def sql(
     pipeline: PipelineArg,
     dialect: Annotated[Dialect, typer.Option(help="SQL dialect to print.")] = Dialect.duckdb,
 ) -> None:
-    """Print the one compiled query of a pipeline."""
+    """Print the compiled SQL of a pipeline: the one scan of the events, then the results."""
     from metricforge.compile.query import render
     from metricforge.spec import load_plan
 
     def action() -> None:
         plan = load_plan(pipeline)
-        sys.stdout.write(render(plan, dialect.value) + ";\n")
+        sys.stdout.write(render(plan, dialect.value) + "\n")
 
     _guard(action)
 

@@ -1,4 +1,4 @@
-"""One run: plan → checked inputs → one query → sufficient statistics → scorecard."""
+"""One run: plan → checked inputs → one scan of the events → sufficient statistics."""
 
 from __future__ import annotations
 
@@ -79,8 +79,8 @@ def _f(value: object) -> float:
 def execute(plan: Plan, engine: Engine) -> RunData:
     engine_inputs, files = gather_inputs(plan)
     stamp = make_stamp(plan, fingerprint(files), engine.name, engine.version())
-    table = engine.run(compile_plan(plan, engine.dialect), engine_inputs)
-    return reshape(plan, stamp, files, table)
+    tables = engine.run(compile_plan(plan, engine.dialect), engine_inputs)
+    return reshape(plan, stamp, files, tables["moments"])
 
 
 def reshape(plan: Plan, stamp: Stamp, files: list[InputFile], table: pa.Table) -> RunData:

@@ -12,7 +12,7 @@ import pytest
 import sqlglot
 import sqlglot.expressions as exp
 
-from metricforge.compile.query import compile_plan, render
+from metricforge.compile.query import UNIT_TABLE, compile_plan, render
 from metricforge.spec import load_plan
 from tests.conftest import DEMO_EXPERIMENTS, PIPELINES, ROOT
 
@@ -29,18 +29,22 @@ def test_compiled_sql_matches_golden_file(experiment: str, dialect: str) -> None
     assert sql == path.read_text(encoding="utf-8")
 
 
-def test_one_query_one_scan_one_unit_grouping() -> None:
-    """All metrics share one read of the events and one per-unit aggregation."""
+def test_one_scan_one_unit_grouping() -> None:
+    """All metrics share one read of the events and one per-unit aggregation; the result
+    queries read only the materialised per-unit table."""
     plan = load_plan(PIPELINES / "checkout_layout.toml")
-    tree = compile_plan(plan)
-    sql = tree.sql(dialect="duckdb")
+    run = compile_plan(plan)
+    sql = run.unit_rows.sql(dialect="duckdb")
     reparsed = sqlglot.parse(sql, read="duckdb")
     assert len(reparsed) == 1 and isinstance(reparsed[0], exp.Select)
-    tables = [t.name for t in tree.find_all(exp.Table)]
+    tables = [t.name for t in run.unit_rows.find_all(exp.Table)]
     assert tables.count("events") == 1
     assert tables.count("exposures") == 1
-    ctes = [c.alias for c in tree.find_all(exp.CTE)]
-    assert ctes == ["first_exposure", "sessions", "units", "classified"]
+    ctes = [c.alias for c in run.unit_rows.find_all(exp.CTE)]
+    assert ctes == ["first_exposure", "sessions", "units"]
+    for name, query in run.results:
+        assert isinstance(query, exp.Select), name
+        assert {t.name for t in query.find_all(exp.Table)} <= {UNIT_TABLE}, name
 
 
 @pytest.mark.parametrize("dialect", ["duckdb", "spark"])

@@ -1,16 +1,20 @@
-"""The compiler: a Plan becomes ONE query, built as a sqlglot syntax tree.
+"""The compiler: a Plan becomes sqlglot syntax trees, never pasted strings.
 
-Stages (CTEs):
+A run is ONE scan of the events, materialised as one row per exposed unit (the table
+``unit_rows``), followed by small result queries over that table. The unit query's
+stages (CTEs):
   first_exposure  each unit's first exposure inside the experiment, its variant and
                   how many distinct variants it saw
   sessions        events joined to first exposures (inside the analysis window),
                   grouped once per (unit, session): every metric's session-level part,
                   the bot rules' inputs and, for dwell metrics, click/back time lists
   units           one row per unit holding every metric's per-unit value
-  classified      per-unit bot verdict and contamination flag; final metric columns
-  (final select)  per-variant sufficient statistics with centred aggregates
+  (unit select)   per-unit bot verdict and contamination flag; final metric columns
 
-The query reads two views, ``events`` and ``exposures``, that the engine registers.
+Result queries read only ``unit_rows`` and return a few rows each:
+  moments         per-variant sufficient statistics with centred aggregates
+
+The unit query reads two views, ``events`` and ``exposures``, that the engine registers.
 """
 
 from __future__ import annotations
@@ -23,6 +27,7 @@ import sqlglot.expressions as exp
 from metricforge.compile.expressions import qualify
 from metricforge.spec.model import BotRule, Kind, MetricDef, Plan, RuleKind
 
+UNIT_TABLE = "unit_rows"
 EXACT = exp.DataType.build("DECIMAL(38, 10)")
 DOUBLE = exp.DataType.build("DOUBLE")
 BIGINT = exp.DataType.build("BIGINT")
@@ -348,24 +353,60 @@ class _Builder:
                     exp.alias_(self._agg(exp.CovarSamp, x, y), cols.cov_xy),
                 )
         keys = [_col("variant"), _col("is_bot"), _col("contaminated")]
-        return select.from_("classified").group_by(*keys).order_by(*keys)
+        return select.from_(UNIT_TABLE).group_by(*keys).order_by(*keys)
 
-    def build(self) -> exp.Select:
-        query = self.moments()
+    def unit_rows(self) -> exp.Select:
+        query = self.classified()
         for name, cte in (
             ("first_exposure", self.first_exposure()),
             ("sessions", self.sessions()),
             ("units", self.units()),
-            ("classified", self.classified()),
         ):
             query = query.with_(name, as_=cte)
         return query
 
+    def build(self) -> CompiledRun:
+        return CompiledRun(unit_rows=self.unit_rows(), results=(("moments", self.moments()),))
 
-def compile_plan(plan: Plan, dialect: str = "duckdb") -> exp.Select:
-    """The one query of a run, as a sqlglot tree for ``dialect`` (duckdb or spark)."""
+
+@dataclass(frozen=True)
+class CompiledRun:
+    """What an engine executes for one run.
+
+    ``unit_rows`` is the only query that reads the events: one row per exposed unit. The
+    engine materialises it as the table ``unit_rows``; each of ``results`` (name, query)
+    then reads only that table and returns a small result.
+    """
+
+    unit_rows: exp.Select
+    results: tuple[tuple[str, exp.Select], ...]
+
+    def materialise(self, dialect: str) -> exp.Expr:
+        """The statement that stores ``unit_rows``: a temporary table, or Spark's cache."""
+        table = exp.to_table(UNIT_TABLE)
+        if dialect == "spark":
+            return exp.Cache(this=table, expression=self.unit_rows)
+        return exp.Create(
+            this=table,
+            kind="TABLE",
+            expression=self.unit_rows,
+            properties=exp.Properties(expressions=[exp.TemporaryProperty()]),
+        )
+
+    def statements(self, dialect: str) -> list[tuple[str, exp.Expr]]:
+        """Every statement in execution order, named: the materialisation, then results."""
+        return [(UNIT_TABLE, self.materialise(dialect)), *self.results]
+
+
+def compile_plan(plan: Plan, dialect: str = "duckdb") -> CompiledRun:
+    """The statements of a run, as sqlglot trees for ``dialect`` (duckdb or spark)."""
     return _Builder(plan, dialect).build()
 
 
 def render(plan: Plan, dialect: str = "duckdb", *, pretty: bool = True) -> str:
-    return compile_plan(plan, dialect).sql(dialect=dialect, pretty=pretty)
+    """All statements of a run as SQL text, each headed by a comment with its name."""
+    parts = [
+        f"-- {name}\n{tree.sql(dialect=dialect, pretty=pretty)};"
+        for name, tree in compile_plan(plan, dialect).statements(dialect)
+    ]
+    return "\n\n".join(parts)

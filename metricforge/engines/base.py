@@ -1,4 +1,4 @@
-"""The engine interface: run one compiled query over two registered inputs."""
+"""The engine interface: run one compiled run over two registered inputs."""
 
 from __future__ import annotations
 
@@ -7,7 +7,8 @@ from pathlib import Path
 from typing import Protocol
 
 import pyarrow as pa
-import sqlglot.expressions as exp
+
+from metricforge.compile.query import CompiledRun
 
 
 @dataclass(frozen=True)
@@ -24,4 +25,6 @@ class Engine(Protocol):
 
     def version(self) -> str: ...
 
-    def run(self, query: exp.Select, inputs: EngineInputs) -> pa.Table: ...
+    def run(self, compiled: CompiledRun, inputs: EngineInputs) -> dict[str, pa.Table]:
+        """Materialise ``compiled.unit_rows``, then return each result query's table by name."""
+        ...

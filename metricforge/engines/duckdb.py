@@ -9,6 +9,7 @@ import duckdb
 import pyarrow as pa
 import sqlglot.expressions as exp
 
+from metricforge.compile.query import CompiledRun
 from metricforge.engines.base import EngineInputs
 from metricforge.errors import EngineError
 
@@ -70,20 +71,28 @@ class DuckDBEngine:
         ).create_view("exposures")
         return con
 
-    def run(self, query: exp.Select, inputs: EngineInputs) -> pa.Table:
-        if not isinstance(query, exp.Select):
-            raise EngineError("refusing to run anything but a single SELECT")
-        sql = query.sql(dialect=self.dialect)
+    def run(self, compiled: CompiledRun, inputs: EngineInputs) -> dict[str, pa.Table]:
+        queries = [compiled.unit_rows, *(q for _, q in compiled.results)]
+        if not all(isinstance(q, exp.Select) for q in queries):
+            raise EngineError("refusing to run anything but SELECT queries")
+        store = compiled.materialise(self.dialect).sql(dialect=self.dialect)
         with tempfile.TemporaryDirectory(prefix="metricforge-spill-", dir=self.temp_dir) as tmp:
             try:
                 con = self._connect(inputs, Path(tmp))
                 try:
-                    relation = con.sql(sql)
-                    fetch = getattr(relation, "to_arrow_table", None) or relation.arrow
-                    table: pa.Table = fetch()
-                    return table
+                    con.execute(store)
+                    return {
+                        name: _fetch(con.sql(query.sql(dialect=self.dialect)))
+                        for name, query in compiled.results
+                    }
                 finally:
                     con.close()
             except duckdb.Error as err:
                 first = str(err).splitlines()[0]
                 raise EngineError(f"DuckDB failed: {first}") from None
+
+
+def _fetch(relation: duckdb.DuckDBPyRelation) -> pa.Table:
+    fetch = getattr(relation, "to_arrow_table", None) or relation.arrow
+    table: pa.Table = fetch()
+    return table

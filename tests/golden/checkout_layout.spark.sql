@@ -1,3 +1,5 @@
+-- unit_rows
+CACHE TABLE unit_rows AS
 WITH first_exposure AS (
   SELECT
     x.unit_id AS unit,
@@ -109,33 +111,34 @@ WITH first_exposure AS (
     unit,
     variant,
     n_variants
-), classified AS (
-  SELECT
-    unit,
-    variant,
-    n_events,
-    (
-      bot_rule_0 = 1 OR max_session_events > 60
-    ) AS is_bot,
-    n_variants > 1 AS contaminated,
-    CAST(u_revenue AS DOUBLE) AS x_revenue,
-    CAST(u_unsubscribes AS DOUBLE) AS x_unsubscribes,
-    CAST(u_page_latency AS DOUBLE) AS x_page_latency,
-    CAST(u_purchases AS DOUBLE) AS x_purchases,
-    CAST(u_refunds AS DOUBLE) AS x_refunds,
-    CAST(u_buyer_share AS DOUBLE) AS x_buyer_share,
-    CAST(u_mobile_purchases AS DOUBLE) AS x_mobile_purchases,
-    CAST(u_clicks AS DOUBLE) AS x_clicks,
-    CAST(u_impressions AS DOUBLE) AS x_impressions,
-    CAST(u_clicks AS DOUBLE) AS x_click_through,
-    CAST(u_impressions AS DOUBLE) AS y_click_through,
-    CAST(u_session_success AS DOUBLE) AS x_session_success,
-    CAST(d_session_success AS DOUBLE) AS y_session_success,
-    (
-      CAST(1.0 AS DOUBLE) * CAST(u_revenue AS DOUBLE) + CAST(-25.0 AS DOUBLE) * CAST(u_unsubscribes AS DOUBLE)
-    ) AS x_net_value
-  FROM units
 )
+SELECT
+  unit,
+  variant,
+  n_events,
+  (
+    bot_rule_0 = 1 OR max_session_events > 60
+  ) AS is_bot,
+  n_variants > 1 AS contaminated,
+  CAST(u_revenue AS DOUBLE) AS x_revenue,
+  CAST(u_unsubscribes AS DOUBLE) AS x_unsubscribes,
+  CAST(u_page_latency AS DOUBLE) AS x_page_latency,
+  CAST(u_purchases AS DOUBLE) AS x_purchases,
+  CAST(u_refunds AS DOUBLE) AS x_refunds,
+  CAST(u_buyer_share AS DOUBLE) AS x_buyer_share,
+  CAST(u_mobile_purchases AS DOUBLE) AS x_mobile_purchases,
+  CAST(u_clicks AS DOUBLE) AS x_clicks,
+  CAST(u_impressions AS DOUBLE) AS x_impressions,
+  CAST(u_clicks AS DOUBLE) AS x_click_through,
+  CAST(u_impressions AS DOUBLE) AS y_click_through,
+  CAST(u_session_success AS DOUBLE) AS x_session_success,
+  CAST(d_session_success AS DOUBLE) AS y_session_success,
+  (
+    CAST(1.0 AS DOUBLE) * CAST(u_revenue AS DOUBLE) + CAST(-25.0 AS DOUBLE) * CAST(u_unsubscribes AS DOUBLE)
+  ) AS x_net_value
+FROM units;
+
+-- moments
 SELECT
   variant,
   is_bot,
@@ -178,7 +181,7 @@ SELECT
   COUNT(x_net_value) AS net_value__n,
   AVG(x_net_value) AS net_value__mean_x,
   VARIANCE(x_net_value) AS net_value__var_x
-FROM classified
+FROM unit_rows
 GROUP BY
   variant,
   is_bot,
@@ -186,4 +189,4 @@ GROUP BY
 ORDER BY
   variant,
   is_bot,
-  contaminated
+  contaminated;
