@@ -127,28 +127,50 @@ class _Builder:
         e, f = "e", "f"
         window = exp.Interval(this=_lit(str(self.spec.window_days)), unit=exp.var("DAY"))
         last = self.spec.end + dt.timedelta(days=self.spec.window_days)
+        pre = self.plan.pre_period_days
+        first: exp.Expr = _col("first_ts", f)
+        if pre:  # also read each unit's pre-period: [first exposure - pre days, first exposure)
+            pre_interval = exp.Interval(this=_lit(str(pre)), unit=exp.var("DAY"))
+            first = exp.Sub(this=first, expression=pre_interval)
         join_on = _and(
             _col(self.spec.unit, e).eq(_col("unit", f)),
-            _col("ts", e) >= _col("first_ts", f),
+            _col("ts", e) >= first,
             _col("ts", e) < exp.Add(this=_col("first_ts", f), expression=window),
-            _col("ts", e) >= _ts(self.spec.start),
+            _col("ts", e) >= _ts(self.spec.start - dt.timedelta(days=pre)),
             _col("ts", e) < _ts(last),
+        )
+        # With a pre-period, every experiment-period part is limited to events at or after
+        # the first exposure, and each metric gets a pre-period twin (prefix `pre`).
+        in_window = _col("ts", e) >= _col("first_ts", f) if pre else None
+        n_events: exp.Expr = (
+            exp.Count(this=_case(in_window, _lit(1)))
+            if in_window is not None
+            else exp.Count(this=_col("ts", e))
         )
         select = exp.select(
             _col("unit", f),
             _col("variant", f),
             _col("n_variants", f),
             exp.alias_(_col("session_id", e), "session"),
-            exp.alias_(exp.Count(this=_col("ts", e)), "n_events"),
+            exp.alias_(n_events, "n_events"),
         )
+        if in_window is not None:
+            before = exp.paren(in_window.copy()).not_()
+            select = select.select(
+                exp.alias_(exp.Count(this=_case(before, _lit(1))), "n_pre_events")
+            )
         for i, rule in enumerate(self.plan.bot_filter.rules):
             flag = self._rule_flag(rule, e)
             if flag is not None:
+                flag = _and(flag, in_window.copy() if in_window is not None else None)
                 select = select.select(
                     exp.alias_(exp.Max(this=_case(flag, _lit(1), _lit(0))), f"bot_rule_{i}")
                 )
         for metric in self.plan.metrics:
-            select = select.select(*self._session_parts(metric, e))
+            select = select.select(*self._session_parts(metric, e, "", in_window))
+            if in_window is not None:
+                before = exp.paren(in_window.copy()).not_()
+                select = select.select(*self._session_parts(metric, e, "pre", before))
         return (
             select.from_(exp.alias_(exp.to_table("first_exposure"), f, table=True))
             .join(exp.alias_(exp.to_table("events"), e, table=True), on=join_on, join_type="left")
@@ -166,9 +188,14 @@ class _Builder:
             return _col("ip_hash", e).isin(*[_lit(t) for t in rule.tokens])
         return None  # unit-level rules are applied in `classified`
 
-    def _session_parts(self, metric: MetricDef, e: str) -> list[exp.Expr]:
-        s = f"s_{metric.name}"
-        cond = _event_condition(metric, e)
+    def _session_parts(
+        self, metric: MetricDef, e: str, period: str, period_cond: exp.Expr | None
+    ) -> list[exp.Expr]:
+        """A metric's session-level columns for one period ("" = experiment, "pre")."""
+        s = f"s{period}_{metric.name}"
+        cond = _and(
+            _event_condition(metric, e), period_cond.copy() if period_cond is not None else None
+        )
         if metric.kind in (Kind.COUNT, Kind.PROPORTION):
             return [exp.alias_(exp.Count(this=_case(cond, _lit(1))), s)]
         if metric.kind in (Kind.SUM, Kind.MEAN):
@@ -177,18 +204,24 @@ class _Builder:
             parts: list[exp.Expr] = [exp.alias_(exp.Sum(this=_case(cond, value)), s)]
             if metric.kind is Kind.MEAN:
                 has = _and(cond, qualify(metric.value, e).is_(exp.null()).not_())
-                parts.append(exp.alias_(exp.Count(this=_case(has, _lit(1))), f"c_{metric.name}"))
+                parts.append(
+                    exp.alias_(exp.Count(this=_case(has, _lit(1))), f"c{period}_{metric.name}")
+                )
             return parts
         if metric.kind is Kind.DWELL_SUCCESS:
-            return [exp.alias_(self._dwell_success(metric, e), s)]
+            return [exp.alias_(self._dwell_success(metric, e, period_cond), s)]
         return []  # ratio and composite are built from other metrics' per-unit columns
 
-    def _dwell_success(self, metric: MetricDef, e: str) -> exp.Expr:
+    def _dwell_success(self, metric: MetricDef, e: str, period_cond: exp.Expr | None) -> exp.Expr:
         """1 when the session has a click with no back within the threshold after it."""
         where = qualify(metric.where, e) if metric.where is not None else None
 
         def times(event: str) -> tuple[exp.Expr, exp.Expr]:
-            cond = _and(_col("event", e).eq(_lit(event)), where)
+            cond = _and(
+                _col("event", e).eq(_lit(event)),
+                where.copy() if where is not None else None,
+                period_cond.copy() if period_cond is not None else None,
+            )
             listed = exp.Filter(
                 this=exp.ArrayAgg(this=exp.UnixMillis(this=_col("ts", e))),
                 expression=exp.Where(this=cond),
@@ -232,17 +265,26 @@ class _Builder:
             exp.alias_(exp.Max(this=_col("n_events")), "max_session_events"),
             exp.alias_(exp.Count(this=_col("session")), "n_sessions"),
         )
+        pre = bool(self.plan.pre_period_days)
+        if pre:
+            select = select.select(
+                exp.alias_(exp.cast(exp.Sum(this=_col("n_pre_events")), BIGINT), "n_pre_events")
+            )
         for i, rule in enumerate(self.plan.bot_filter.rules):
             if rule.kind in (RuleKind.USER_AGENT, RuleKind.DENY_IP):
                 select = select.select(
                     exp.alias_(exp.Max(this=_col(f"bot_rule_{i}")), f"bot_rule_{i}")
                 )
         for metric in self.plan.metrics:
-            select = select.select(*self._unit_parts(metric))
+            select = select.select(*self._unit_parts(metric, "", "n_events" if pre else None))
+            if pre:
+                select = select.select(*self._unit_parts(metric, "pre", "n_pre_events"))
         return select.from_("sessions").group_by(_col("unit"), _col("variant"), _col("n_variants"))
 
-    def _unit_parts(self, metric: MetricDef) -> list[exp.Expr]:
-        s, u = _col(f"s_{metric.name}"), f"u_{metric.name}"
+    def _unit_parts(self, metric: MetricDef, period: str, active: str | None) -> list[exp.Expr]:
+        """A metric's per-unit columns for one period; ``active`` names the session column
+        counting the period's events (sessions without any are not the period's)."""
+        s, u = _col(f"s{period}_{metric.name}"), f"u{period}_{metric.name}"
         total = exp.Coalesce(this=exp.Sum(this=s), expressions=[_lit(0)])
         if metric.kind is Kind.COUNT:
             return [exp.alias_(exp.cast(total, BIGINT), u)]
@@ -251,27 +293,30 @@ class _Builder:
         if metric.kind is Kind.PROPORTION:
             return [exp.alias_(_case(total > _lit(0), _lit(1), _lit(0)), u)]
         if metric.kind is Kind.MEAN:
-            count = exp.Sum(this=_col(f"c_{metric.name}"))
+            count = exp.Sum(this=_col(f"c{period}_{metric.name}"))
             mean = exp.Div(
                 this=exp.cast(exp.Sum(this=s), DOUBLE), expression=exp.cast(count, DOUBLE)
             )
             return [exp.alias_(_case(count > _lit(0), mean), u)]
         if metric.kind is Kind.DWELL_SUCCESS:
+            session: exp.Expr = _col("session")
+            if active is not None:
+                session = _case(_col(active) > _lit(0), session)
             return [
                 exp.alias_(exp.cast(total, BIGINT), u),
-                exp.alias_(exp.Count(this=_col("session")), f"d_{metric.name}"),
+                exp.alias_(exp.Count(this=session), f"d{period}_{metric.name}"),
             ]
         return []
 
     # -- stage 4 -------------------------------------------------------------------------
-    def _per_unit(self, name: str) -> exp.Expr:
+    def _per_unit(self, name: str, period: str = "") -> exp.Expr:
         """A per-unit metric's value as a DOUBLE expression over the `units` columns."""
         metric = self.plan.metric(name)
         if metric.kind is Kind.COMPOSITE:
             terms = [
                 exp.Mul(
                     this=exp.cast(exp.Literal.number(repr(float(w))), DOUBLE),
-                    expression=self._per_unit(t),
+                    expression=self._per_unit(t, period),
                 )
                 for t, w in metric.terms
             ]
@@ -279,7 +324,21 @@ class _Builder:
             for term in terms[1:]:
                 total = exp.Add(this=total, expression=term)
             return exp.paren(total)
-        return exp.cast(_col(f"u_{name}"), DOUBLE)
+        return exp.cast(_col(f"u{period}_{name}"), DOUBLE)
+
+    def _x_y(self, metric: MetricDef, period: str) -> tuple[exp.Expr, exp.Expr | None]:
+        """The per-unit numerator X and, for ratio kinds, denominator Y of a metric."""
+        if metric.kind is Kind.RATIO:
+            assert metric.numerator and metric.denominator
+            return self._per_unit(metric.numerator, period), self._per_unit(
+                metric.denominator, period
+            )
+        if metric.kind is Kind.DWELL_SUCCESS:
+            return (
+                exp.cast(_col(f"u{period}_{metric.name}"), DOUBLE),
+                exp.cast(_col(f"d{period}_{metric.name}"), DOUBLE),
+            )
+        return self._per_unit(metric.name, period), None
 
     def classified(self) -> exp.Select:
         flags: list[exp.Expr] = []
@@ -298,18 +357,15 @@ class _Builder:
             exp.alias_(is_bot, "is_bot"),
             exp.alias_(_col("n_variants") > _lit(1), "contaminated"),
         )
+        periods = ("", "pre") if self.plan.pre_period_days else ("",)
+        if self.plan.pre_period_days:
+            select = select.select(exp.alias_(_col("n_pre_events") > _lit(0), "has_pre"))
         for metric in self.plan.metrics:
-            if metric.kind is Kind.RATIO:
-                assert metric.numerator and metric.denominator
-                x, y = self._per_unit(metric.numerator), self._per_unit(metric.denominator)
-            elif metric.kind is Kind.DWELL_SUCCESS:
-                x = exp.cast(_col(f"u_{metric.name}"), DOUBLE)
-                y = exp.cast(_col(f"d_{metric.name}"), DOUBLE)
-            else:
-                x, y = self._per_unit(metric.name), None
-            select = select.select(exp.alias_(x, f"x_{metric.name}"))
-            if y is not None:
-                select = select.select(exp.alias_(y, f"y_{metric.name}"))
+            for period in periods:
+                x, y = self._x_y(metric, period)
+                select = select.select(exp.alias_(x, f"x{period}_{metric.name}"))
+                if y is not None:
+                    select = select.select(exp.alias_(y, f"y{period}_{metric.name}"))
         return select.from_("units")
 
     # -- stage 5 -------------------------------------------------------------------------

@@ -42,6 +42,7 @@ def load_spec(path: Path) -> ExperimentSpec:
             "start",
             "end",
             "window_days",
+            "pre_period_days",
             "alpha",
             "srm_alpha",
             "bot_filter",
@@ -85,6 +86,9 @@ def load_spec(path: Path) -> ExperimentSpec:
     window = ex.integer("window_days", 14)
     if window < 1:
         raise ex.error("window_days must be at least 1", "window_days")
+    pre_days = ex.integer("pre_period_days", 0)
+    if not 0 <= pre_days <= 366:
+        raise ex.error("pre_period_days must be between 0 and 366", "pre_period_days")
     alpha = ex.number("alpha", 0.05)
     srm_alpha = ex.number("srm_alpha", 0.001)
     for key, value in (("alpha", alpha), ("srm_alpha", srm_alpha)):
@@ -112,6 +116,7 @@ def load_spec(path: Path) -> ExperimentSpec:
         start=start,
         end=end,
         window_days=window,
+        pre_period_days=pre_days,
         alpha=alpha,
         srm_alpha=srm_alpha,
         bot_filter_ref=ex.req_str("bot_filter"),
@@ -164,4 +169,10 @@ def load_plan(path: Path, *, bot_filter: str | None = None) -> Plan:
         add(name)
     ref = bot_filter or spec.bot_filter_ref
     flt = load_filter(filters_folder(spec), ref, spec_file=str(path))
-    return Plan(spec=spec, bot_filter=flt, metrics=tuple(needed), reported=reported)
+    return Plan(
+        spec=spec,
+        bot_filter=flt,
+        metrics=tuple(needed),
+        reported=reported,
+        pre_period_days=spec.pre_period_days,
+    )

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 
 from metricforge.compile.expressions import parse_expression
@@ -10,6 +11,7 @@ from metricforge.schema import EVENT_COLUMNS, EVENT_TYPES, NUMERIC_TYPES
 from metricforge.spec.model import PER_UNIT_KINDS, Direction, Kind, MetricDef, Origin
 from metricforge.spec.tomlfile import Section, TomlFile, read_toml
 
+NAME = re.compile(r"^[a-z][a-z0-9_]{0,62}$")
 _COMMON = {"kind", "direction", "unit_label", "description"}
 _KEYS: dict[Kind, set[str]] = {
     Kind.COUNT: _COMMON | {"event", "where"},
@@ -47,6 +49,13 @@ def load_library(paths: tuple[Path, ...]) -> dict[str, MetricDef]:
             raise toml.error("unknown top-level key", key, suggestion=closest(key, ["metric"]))
         metrics = Section(toml, ("metric",), toml.data.get("metric", {}))
         for name in metrics.table:
+            if not NAME.match(name):
+                raise toml.error(
+                    "a metric name is 1 to 63 lower-case letters, digits or _,"
+                    " starting with a letter",
+                    "metric",
+                    name,
+                )
             if name in library:
                 first = library[name].origin.file
                 raise toml.error(f"metric is already defined in {first}", "metric", name)

@@ -127,6 +127,7 @@ class ExperimentSpec:
     diagnostics: tuple[str, ...]
     srm_alpha: float = 0.001
     description: str = ""
+    pre_period_days: int = 0  # days before each unit's first exposure to read (0: none)
 
     @property
     def variant_names(self) -> tuple[str, ...]:
@@ -147,6 +148,10 @@ class Plan:
     bot_filter: BotFilter
     metrics: tuple[MetricDef, ...]  # the reported metrics plus their dependencies
     reported: tuple[tuple[str, Role], ...]
+    # Days before each unit's first exposure read as its pre-period (0: none). With a
+    # pre-period, `unit_rows` also holds every metric's pre-period values (`xpre_<name>`,
+    # `ypre_<name>`) and `has_pre`; experiment-period columns are unchanged.
+    pre_period_days: int = 0
 
     def metric(self, name: str) -> MetricDef:
         for m in self.metrics:
