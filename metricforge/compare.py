@@ -62,11 +62,12 @@ def read_result(folder: Path) -> ResultFolder:
     if folder.is_file():
         folder = folder.parent
     parquet, card_path = folder / SCORECARD, folder / SCORECARD_JSON
+    for path in (parquet, card_path):
+        if not path.is_file():
+            raise ManifestError("not a result folder: file missing", file=str(path))
     try:
         table = pq.read_table(parquet)
         card = json.loads(card_path.read_bytes().decode("utf-8"))
-    except FileNotFoundError as err:
-        raise ManifestError("not a result folder: file missing", file=str(err.filename)) from None
     except (pa.ArrowException, OSError, ValueError) as err:
         first = (str(err).splitlines() or [type(err).__name__])[0]
         raise ManifestError(f"cannot read the scorecard: {first}", file=str(folder)) from None

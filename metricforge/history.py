@@ -17,11 +17,10 @@ from pathlib import Path
 from typing import Any
 
 from metricforge.errors import ManifestError
-from metricforge.manifest import MANIFEST_NAME, absolute
 
 HISTORY_NAME = "metricforge-history.jsonl"
 HISTORY_FORMAT = 1
-_OUTPUTS = ("scorecard.parquet", "scorecard.json", MANIFEST_NAME)
+_OUTPUTS = ("scorecard.parquet", "scorecard.json", "manifest.json")
 
 try:  # POSIX only; O_APPEND alone already keeps one small write in one piece
     import fcntl
@@ -31,7 +30,7 @@ except ImportError:  # pragma: no cover - not on POSIX
 
 def output_root(out: Path) -> Path:
     """The folder whose history a result folder ``out`` belongs to: its parent."""
-    return Path(absolute(out)).parent
+    return Path(os.path.abspath(out)).parent
 
 
 def history_file(root: Path) -> Path:
@@ -40,7 +39,7 @@ def history_file(root: Path) -> Path:
 
 def entry_for(out: Path, command: str, extra: dict[str, Any] | None = None) -> dict[str, Any]:
     """The catalogue line of the complete result folder ``out``."""
-    manifest = json.loads((out / MANIFEST_NAME).read_bytes())
+    manifest = json.loads((out / "manifest.json").read_bytes())
     card = json.loads((out / "scorecard.json").read_bytes())
     stamp = manifest["stamp"]
     entry: dict[str, Any] = {
@@ -62,7 +61,7 @@ def entry_for(out: Path, command: str, extra: dict[str, Any] | None = None) -> d
             if r.get("role") == "decision"
         ],
         "out": out.name,
-        "out_absolute": absolute(out),
+        "out_absolute": Path(os.path.abspath(out)).as_posix(),
         "sha256": {name: _sha256(out / name) for name in _OUTPUTS},
     }
     entry.update(extra or {})
