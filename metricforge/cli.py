@@ -204,8 +204,8 @@ def rerun(
             spec_folder=spec_folder,
         )
         render(done.card, out_console)
-        render_rerun(str(manifest), done.changes, done.verdict, out_console)
-        extra = {"rerun_of": str(manifest.absolute()), "reproduced": done.verdict.identical}
+        render_rerun(str(done.manifest), done.changes, done.verdict, out_console)
+        extra = {"rerun_of": str(done.manifest.absolute()), "reproduced": done.verdict.identical}
         out_console.print(history.record(out, "rerun", extra), markup=False)
         return bool(done.verdict.identical)
 

@@ -7,6 +7,7 @@ their stamps differ in the experiment, the bot filter or the metric definitions.
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 from dataclasses import dataclass
@@ -18,24 +19,14 @@ import pyarrow.parquet as pq
 
 from metricforge.errors import ManifestError
 from metricforge.manifest import MANIFEST_NAME
+from metricforge.provenance import Stamp
 from metricforge.report.files import dump_json, parquet_bytes, write_folder
 
 SCORECARD = "scorecard.parquet"
 SCORECARD_JSON = "scorecard.json"
 KEY = ("metric", "variant")
 # Columns that stamp a row rather than measure something: checked for comparability.
-STAMP_COLUMNS = frozenset(
-    {
-        "experiment",
-        "bot_filter",
-        "bot_filter_version",
-        "bot_filter_sha256",
-        "definitions_sha256",
-        "spec_sha256",
-        "inputs_fingerprint",
-        "tool_version",
-    }
-)
+STAMP_COLUMNS = frozenset(f.name for f in dataclasses.fields(Stamp))
 NOT_COMPARABLE_EXIT = 4  # compare without --force: the stamps differ in filter or definitions
 
 
@@ -72,8 +63,10 @@ def read_result(folder: Path) -> ResultFolder:
         first = (str(err).splitlines() or [type(err).__name__])[0]
         raise ManifestError(f"cannot read the scorecard: {first}", file=str(folder)) from None
     missing = [c for c in KEY if c not in table.column_names]
-    if missing or not isinstance(card, dict):
-        raise ManifestError(f"not a scorecard (no column {missing[:1]})", file=str(parquet))
+    if missing:
+        raise ManifestError(f"not a scorecard: no column '{missing[0]}'", file=str(parquet))
+    if not (isinstance(card, dict) and isinstance(card.get("stamp"), dict)):
+        raise ManifestError("not a scorecard: no stamp", file=str(card_path), key="stamp")
     manifest = None
     try:
         manifest = json.loads((folder / MANIFEST_NAME).read_bytes().decode("utf-8"))

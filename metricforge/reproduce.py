@@ -13,6 +13,7 @@ from metricforge.compare import (
     match_rows,
     read_result,
 )
+from metricforge.errors import ManifestError
 from metricforge.manifest import MANIFEST_NAME, Manifest, read_manifest
 
 BUG = (
@@ -77,8 +78,12 @@ def judge(old: Manifest, out: Path, input_changes: list[str]) -> Verdict:
         missing = [n for n, same in files.items() if same is None]
         reasons.insert(0, f"no old {', '.join(missing)} next to the manifest to compare with")
         return Verdict(None, files, reasons, [])
-    before_result, after_result = read_result(old_dir), read_result(out)
-    differences = changed_rows(*match_rows(before_result, after_result))
+    try:
+        before_result, after_result = read_result(old_dir), read_result(out)
+        differences = changed_rows(*match_rows(before_result, after_result))
+    except ManifestError as err:  # the new result is written; say why it cannot be judged
+        reasons.insert(0, f"the old scorecard cannot be read: {err.one_line()}")
+        return Verdict(False, files, reasons, [])
     old_cols = before_result.table.column_names
     new_cols = after_result.table.column_names
     if old_cols != new_cols:

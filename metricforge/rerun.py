@@ -31,7 +31,7 @@ from metricforge.report.scorecard import Scorecard, build
 from metricforge.reproduce import Verdict, judge
 from metricforge.runner import execute
 from metricforge.spec.experiment import assemble_plan, load_spec
-from metricforge.spec.filters import REGISTRY_NAME
+from metricforge.spec.filters import REGISTRY_NAME, parse_ref
 from metricforge.spec.model import Plan
 
 RERUN_DIFFERS_EXIT = 5  # the rerun did not reproduce the old scorecard byte for byte
@@ -63,6 +63,7 @@ class InputsChangedError(InputDataError):
 
 @dataclass(frozen=True)
 class RerunResult:
+    manifest: Path
     out: Path
     card: Scorecard
     changes: list[InputChange]
@@ -99,6 +100,7 @@ def plan_from_manifest(man: Manifest, work: Path, spec_folder: Path | None = Non
         origin[str(copy)] = record["path"]
     entry = man.get("bot_filter", "registry_entry")
     ref = f"{entry['name']}@{entry['version']}"
+    parse_ref(ref, file=str(man.path), key="bot_filter.registry_entry")  # safe as a file name
     if ref != man.get("options", "bot_filter"):
         raise man.error(f"registry entry {ref} is not the run's filter", "bot_filter")
     filters = work / "filters"
@@ -220,4 +222,4 @@ def rerun(
         card = build(data)
         write_outputs(out, data, card)
     verdict = judge(man, out, [c.describe() for c in changes])
-    return RerunResult(out=out, card=card, changes=changes, verdict=verdict)
+    return RerunResult(manifest=man.path, out=out, card=card, changes=changes, verdict=verdict)

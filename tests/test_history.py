@@ -50,7 +50,7 @@ def test_every_run_and_rerun_is_catalogued(case: Path, tmp_path: Path) -> None:
     assert first["out"] == "a" and first["out_absolute"] == (root / "a").as_posix()
     assert first["decision"][0]["metric"] == "revenue"
     assert entries[2]["reproduced"] is True
-    assert entries[2]["rerun_of"] == (root / "a").as_posix()
+    assert entries[2]["rerun_of"] == (root / "a" / "manifest.json").as_posix()
 
 
 def test_history_command_lists_and_filters(case: Path, tmp_path: Path) -> None:

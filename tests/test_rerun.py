@@ -6,6 +6,7 @@ import hashlib
 import json
 import shutil
 import struct
+import tempfile
 from pathlib import Path
 from typing import Any
 
@@ -384,3 +385,27 @@ def test_manifest_not_json(tmp_path: Path) -> None:
     (tmp_path / "manifest.json").write_text("{not json")
     result = invoke("rerun", tmp_path / "manifest.json", "--out", tmp_path / "x")
     assert result.exit_code == 2 and "not a JSON manifest" in result.output
+
+
+def test_unreadable_old_scorecard_is_reported_not_crashed(case: Path, tmp_path: Path) -> None:
+    old = tmp_path / "results" / "old"
+    run_ok("run", case, "--out", old)
+    (old / "scorecard.json").write_text("{broken")
+    result = invoke("rerun", old, "--out", tmp_path / "results" / "new")
+    assert result.exit_code == RERUN_DIFFERS_EXIT, result.output
+    assert "the old scorecard cannot be read" in result.output
+    assert (tmp_path / "results" / "new" / "scorecard.parquet").is_file()
+
+
+def test_hostile_filter_name_in_manifest_is_refused(case: Path, tmp_path: Path) -> None:
+    old = tmp_path / "results" / "old"
+    run_ok("run", case, "--out", old)
+
+    def hostile(data: dict[str, Any]) -> None:
+        data["bot_filter"]["registry_entry"]["name"] = "../../escape"
+        data["options"]["bot_filter"] = "../../escape@1"
+
+    _rewrite(old / "manifest.json", hostile)
+    result = invoke("rerun", old, "--out", tmp_path / "results" / "new")
+    assert result.exit_code == 2 and "NAME@VERSION" in result.output
+    assert not (Path(tempfile.gettempdir()) / "escape-v1.toml").exists()
