@@ -187,7 +187,10 @@ def rerun(
     ] = None,
     threads: Annotated[int | None, typer.Option(help="Engine threads (default: all).")] = None,
 ) -> None:
-    """Rerun a past run from its manifest's own copies; say whether it reproduces exactly."""
+    """Rerun a past run from its manifest's own copies; say whether it reproduces exactly.
+
+    Exits with 2 if the inputs changed (unless --allow-changed-inputs), with 5 if the new
+    scorecard is not byte-identical to the old one next to the manifest."""
     from metricforge import history
     from metricforge.engines.duckdb import DuckDBEngine
     from metricforge.report.terminal import render
@@ -222,7 +225,10 @@ def compare(
     ] = None,
     force: Annotated[bool, typer.Option("--force", help="Compare even if not comparable.")] = False,
 ) -> None:
-    """Side by side: two scorecards, the change in every value and effect."""
+    """Side by side: two scorecards, the change in every value and effect.
+
+    Results that differ in experiment, bot filter or definitions are not comparable: exit 4
+    and nothing written, unless --force."""
     from metricforge.compare import NOT_COMPARABLE_EXIT, compare_results, write_comparison
     from metricforge.report.views import render_comparison
 

@@ -111,27 +111,34 @@ def render_rerun(
         console.print(f"  … and {len(verdict.differences) - 20} more rows")
 
 
+_REPRODUCED = {True: " (identical)", False: " (differs)", None: " (unconfirmed)"}
+
+
 def render_history(entries: list[dict[str, Any]], console: Console) -> None:
-    table = Table("run at", "experiment", "command", "filter", "definitions", "inputs")
+    """One line per run; ``out`` is the result folder's name inside the output root."""
+    table = Table("run at (UTC)", "experiment", "command", "filter", "definitions", "inputs")
     for col in ("tool", "trust", "decision", "out"):
-        table.add_column(col)
+        table.add_column(col, no_wrap=col == "out")
     for e in entries:
         decision = "; ".join(
             f"{d.get('metric')} {_pct(d.get('rel_effect'))} p={_num(d.get('p_value'), 3)}"
             for d in e.get("decision", [])
             if isinstance(d, dict)
         )
+        command = str(e.get("command"))
+        if command == "rerun":
+            command += _REPRODUCED.get(e.get("reproduced"), "")
         table.add_row(
-            str(e.get("run_at")).replace("+00:00", "Z"),
-            str(e.get("experiment")),
-            str(e.get("command")),
+            str(e.get("run_at"))[:16].replace("T", " "),
+            escape(str(e.get("experiment"))),
+            command,
             str(e.get("bot_filter")),
             str(e.get("definitions_sha256"))[:12],
             str(e.get("inputs_fingerprint"))[:12],
             str(e.get("tool_version")),
             str(e.get("trust")),
             decision,
-            escape(str(e.get("out_absolute") or e.get("out"))),
+            escape(str(e.get("out"))),
         )
     console.print(table)
     console.print(f"{len(entries)} run(s)")
