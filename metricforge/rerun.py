@@ -50,13 +50,16 @@ class InputChange:
 class InputsChangedError(InputDataError):
     """The inputs no longer match the manifest's fingerprints."""
 
-    def __init__(self, changes: list[InputChange], manifest: Path) -> None:
+    def __init__(self, changes: list[InputChange], man: Manifest, base: Path) -> None:
         self.changes = changes
         listed = "; ".join(c.describe() for c in changes)
+        hint = " rerun with --allow-changed-inputs to use them anyway"
+        missing = sum(c.status == "missing" for c in changes)
+        if missing == len(man.get("inputs", "files")):
+            hint = f" none was found from {base}; if the data moved, rerun with --spec-folder"
         super().__init__(
-            f"{len(changes)} input file(s) differ from the manifest: {listed};"
-            " rerun with --allow-changed-inputs to use them anyway",
-            file=str(manifest),
+            f"{len(changes)} input file(s) differ from the manifest: {listed};{hint}",
+            file=str(man.path),
             key="inputs",
         )
 
@@ -202,7 +205,7 @@ def rerun(
         plan = plan_from_manifest(man, Path(tmp), spec_folder)
         changes = verify_inputs(man, plan)
         if changes and not allow_changed_inputs:
-            raise InputsChangedError(changes, man.path)
+            raise InputsChangedError(changes, man, plan.spec.path.parent)
         data = execute(plan, engine)
         if man.get("inputs", "hashes") == FULL:
             hash_contents(data)

@@ -274,6 +274,7 @@ def test_moved_data_found_through_spec_folder(case: Path, tmp_path: Path) -> Non
     shutil.move(case.parent, moved)
     lost = invoke("rerun", tmp_path / "results" / "first", "--out", tmp_path / "results" / "x")
     assert lost.exit_code == 2 and "missing exposures.parquet" in lost.output
+    assert "--spec-folder" in lost.output
     result = run_ok(
         "rerun",
         tmp_path / "results" / "first",
