@@ -31,6 +31,11 @@ class Dialect(StrEnum):
     spark = "spark"
 
 
+class InputHashes(StrEnum):
+    footer = "footer"
+    full = "full"
+
+
 def _guard(action: Callable[[], T]) -> T:
     """Run ``action``; turn any error into one line on stderr and a non-zero exit."""
     try:
@@ -61,9 +66,15 @@ def run(
     strict: Annotated[
         bool, typer.Option("--strict", help=f"Exit with {STRICT_EXIT} when a trust check fails.")
     ] = False,
+    hash_inputs: Annotated[
+        InputHashes,
+        typer.Option("--hash-inputs", help="footer: hash each Parquet footer; full: every byte."),
+    ] = InputHashes.footer,
 ) -> None:
     """Compute the scorecard of one experiment and write it to OUT, all or nothing."""
+    from metricforge import history
     from metricforge.engines.duckdb import DuckDBEngine
+    from metricforge.manifest import hash_contents
     from metricforge.report.files import write_outputs
     from metricforge.report.scorecard import build
     from metricforge.report.terminal import render
@@ -73,10 +84,13 @@ def run(
     def action() -> bool:
         plan = load_plan(pipeline, bot_filter=bot_filter)
         data = execute(plan, DuckDBEngine(threads=threads))
+        if hash_inputs is InputHashes.full:
+            hash_contents(data)
         card = build(data)
         write_outputs(out, data, card)
         render(card, out_console)
         out_console.print(f"wrote {out}/scorecard.parquet, scorecard.json, manifest.json")
+        out_console.print(history.record(out, "run"), markup=False)
         return bool(card.trust["verdict"] == "pass")
 
     trusted = _guard(action)
@@ -156,6 +170,105 @@ def sample(
         n = users if users is not None else generator.DEFAULT_USERS
         path = generator.generate(out, users=n, days=days, seed=seed)
         out_console.print(f"wrote sample logs to {path}")
+
+    _guard(action)
+
+
+@app.command()
+def rerun(
+    manifest: Annotated[Path, typer.Argument(help="A run's manifest.json (or its folder).")],
+    out: Annotated[Path, typer.Option("--out", help="Folder for the new results.")],
+    allow_changed_inputs: Annotated[
+        bool, typer.Option("--allow-changed-inputs", help="Run even if the inputs changed.")
+    ] = False,
+    spec_folder: Annotated[
+        Path | None,
+        typer.Option(help="Resolve the spec's relative data paths from here (data moved)."),
+    ] = None,
+    threads: Annotated[int | None, typer.Option(help="Engine threads (default: all).")] = None,
+) -> None:
+    """Rerun a past run from its manifest's own copies; say whether it reproduces exactly.
+
+    Exits with 2 if the inputs changed (unless --allow-changed-inputs), with 5 if the new
+    scorecard is not byte-identical to the old one next to the manifest."""
+    from metricforge import history
+    from metricforge.engines.duckdb import DuckDBEngine
+    from metricforge.report.terminal import render
+    from metricforge.report.views import render_rerun
+    from metricforge.rerun import RERUN_DIFFERS_EXIT
+    from metricforge.rerun import rerun as rerun_run
+
+    def action() -> bool:
+        done = rerun_run(
+            manifest,
+            out,
+            DuckDBEngine(threads=threads),
+            allow_changed_inputs=allow_changed_inputs,
+            spec_folder=spec_folder,
+        )
+        render(done.card, out_console)
+        render_rerun(str(done.manifest), done.changes, done.verdict, out_console)
+        extra = {"rerun_of": str(done.manifest.absolute()), "reproduced": done.verdict.identical}
+        out_console.print(history.record(out, "rerun", extra), markup=False)
+        return bool(done.verdict.identical)
+
+    if not _guard(action):
+        raise typer.Exit(RERUN_DIFFERS_EXIT)
+
+
+@app.command()
+def compare(
+    a: Annotated[Path, typer.Argument(help="Result folder A (the baseline).")],
+    b: Annotated[Path, typer.Argument(help="Result folder B.")],
+    out: Annotated[
+        Path | None, typer.Option("--out", help="Write comparison.parquet and .json here.")
+    ] = None,
+    force: Annotated[bool, typer.Option("--force", help="Compare even if not comparable.")] = False,
+) -> None:
+    """Side by side: two scorecards, the change in every value and effect.
+
+    Results that differ in experiment, bot filter or definitions are not comparable: exit 4
+    and nothing written, unless --force."""
+    from metricforge.compare import NOT_COMPARABLE_EXIT, compare_results, write_comparison
+    from metricforge.report.views import render_comparison
+
+    def action() -> int:
+        comparison = compare_results(a, b)
+        render_comparison(comparison, out_console)
+        if not (comparison.comparable or force):
+            err_console.print(
+                "error: the results are not comparable: "
+                + "; ".join(comparison.reasons)
+                + " (--force to compare anyway; nothing written)",
+                markup=False,
+            )
+            return NOT_COMPARABLE_EXIT
+        if out is not None:
+            write_comparison(out, comparison, forced=not comparison.comparable)
+            out_console.print(f"wrote {out}/comparison.parquet, comparison.json", markup=False)
+        return 0
+
+    code = _guard(action)
+    if code:
+        raise typer.Exit(code)
+
+
+@app.command()
+def history(
+    root: Annotated[
+        Path, typer.Argument(help="Output root: the parent folder of the runs' --out.")
+    ] = Path("results"),
+    experiment: Annotated[str | None, typer.Option(help="Only this experiment.")] = None,
+) -> None:
+    """List the runs catalogued in ROOT/metricforge-history.jsonl, oldest first."""
+    from metricforge.history import read_history
+    from metricforge.report.views import render_history
+
+    def action() -> None:
+        entries, warnings = read_history(root, experiment)
+        for warning in warnings:
+            err_console.print(f"warning: {warning}", markup=False)
+        render_history(entries, out_console)
 
     _guard(action)
 

@@ -78,3 +78,7 @@ class StatsError(MetricforgeError):
 
 class OutputError(MetricforgeError):
     """Writing results failed."""
+
+
+class ManifestError(MetricforgeError):
+    """A manifest.json, scorecard or history file cannot be read or does not match itself."""

@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import json
+import os
 import struct
 from dataclasses import dataclass
 from pathlib import Path
@@ -22,6 +24,7 @@ class InputFile:
     rows: int
     footer_sha256: str
     schema: pa.Schema
+    content_sha256: str | None = None  # of the whole file; only when asked for (slow)
 
 
 def parquet_files(path: Path) -> list[Path]:
@@ -60,11 +63,42 @@ def inspect(path: Path, base: Path) -> InputFile:
     except (pa.ArrowException, OSError) as err:
         first = str(err).splitlines()[0] if str(err) else type(err).__name__
         raise InputDataError(f"cannot read Parquet: {first}", file=str(path)) from None
+    return InputFile(path, label_of(path, base), path.stat().st_size, meta.num_rows, footer, schema)
+
+
+def label_of(path: Path, base: Path) -> str:
+    """``path`` as the spec wrote it: relative to the spec's folder (lexically, so that the
+    label does not depend on the working directory or on symbolic links), or absolute when
+    the spec gave an absolute path."""
     try:
-        label = path.resolve().relative_to(base.resolve()).as_posix()
+        return path.relative_to(base).as_posix()
     except ValueError:
-        label = path.as_posix()
-    return InputFile(path, label, path.stat().st_size, meta.num_rows, footer, schema)
+        return Path(os.path.abspath(path)).as_posix()
+
+
+def content_sha256(path: Path) -> str:
+    """SHA-256 of a whole file, read in blocks."""
+    digest = hashlib.sha256()
+    with path.open("rb") as fh:
+        while block := fh.read(1 << 20):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def with_content_hashes(files: list[InputFile]) -> list[InputFile]:
+    """``files`` with the hash of each whole file, refusing a file that changed since it was
+    inspected (its size or footer differs now)."""
+    out = []
+    for f in files:
+        try:
+            digest = content_sha256(f.path)
+            same = f.path.stat().st_size == f.size and _footer_sha256(f.path) == f.footer_sha256
+        except OSError as err:
+            raise InputDataError(f"cannot read: {err.strerror}", file=f.label) from None
+        if not same:
+            raise InputDataError("input file changed while the run read it", file=f.label)
+        out.append(dataclasses.replace(f, content_sha256=digest))
+    return out
 
 
 _TYPE_CHECKS = {
@@ -102,10 +136,3 @@ def fingerprint(files: list[InputFile]) -> str:
     """One hash over every input file's label, size, row count and footer hash."""
     payload = [[f.label, f.size, f.rows, f.footer_sha256] for f in files]
     return hashlib.sha256(json.dumps(payload, separators=(",", ":")).encode()).hexdigest()
-
-
-def describe(files: list[InputFile]) -> list[dict[str, object]]:
-    return [
-        {"path": f.label, "size": f.size, "rows": f.rows, "footer_sha256": f.footer_sha256}
-        for f in files
-    ]

@@ -5,6 +5,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import pyarrow as pa
 
@@ -43,6 +44,8 @@ class RunData:
     inputs: list[InputFile]
     counts: dict[str, VariantCounts]
     moments: dict[str, dict[str, Moments]] = field(default_factory=dict)  # metric -> variant
+    # Extra sections for manifest.json (how inputs were hashed, what a rerun started from).
+    provenance: dict[str, Any] = field(default_factory=dict)
 
 
 def needed_event_columns(plan: Plan) -> tuple[str, ...]:

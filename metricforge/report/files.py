@@ -2,22 +2,21 @@
 
 from __future__ import annotations
 
-import datetime as dt
 import json
 import math
 import os
 import shutil
+from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
+import pyarrow as pa
 import pyarrow.parquet as pq
 
 from metricforge.errors import OutputError
-from metricforge.inputs import describe
-from metricforge.provenance import library_versions
+from metricforge.manifest import build_manifest
 from metricforge.report.scorecard import Scorecard
 from metricforge.runner import RunData
-from metricforge.spec.metrics import definition_files
 
 
 def _json_default(value: object) -> object:
@@ -32,28 +31,8 @@ def dump_json(data: Any) -> bytes:
 
 
 def manifest(data: RunData, card: Scorecard) -> dict[str, Any]:
-    plan = data.plan
-    return {
-        "stamp": card.stamp,
-        "run_at": dt.datetime.now(dt.UTC).isoformat(timespec="seconds"),
-        "libraries": library_versions(),
-        "spec": {"path": str(plan.spec.path), "sha256": plan.spec.sha256, "text": plan.spec.text},
-        "bot_filter": {
-            "ref": plan.bot_filter.ref,
-            "path": str(plan.bot_filter.path),
-            "sha256": plan.bot_filter.sha256,
-            "released": plan.bot_filter.released,
-            "text": plan.bot_filter.text,
-        },
-        "definitions": {
-            "used": [m.name for m in plan.metrics],
-            "files": [
-                {"path": str(p), "text": p.read_text(encoding="utf-8")}
-                for p in definition_files(plan.spec.definition_paths)
-            ],
-        },
-        "inputs": describe(data.inputs),
-    }
+    """The manifest's content lives in metricforge/manifest.py."""
+    return build_manifest(data, card)
 
 
 def _write(path: Path, payload: bytes) -> None:
@@ -80,6 +59,37 @@ def write_outputs(out: Path, data: RunData, card: Scorecard) -> None:
             os.fsync(fh.fileno())
         _write(tmp / "scorecard.json", dump_json(card.as_json()))
         _write(tmp / "manifest.json", dump_json(manifest(data, card)))
+        old = parent / f".{out.name}.old-{os.getpid()}"
+        if out.exists():
+            out.rename(old)
+        tmp.rename(out)
+        if old.exists():
+            shutil.rmtree(old)
+    except OSError as err:
+        raise OutputError(f"cannot write results: {err.strerror}", file=str(out)) from None
+
+
+def parquet_bytes(table: pa.Table) -> bytes:
+    sink = pa.BufferOutputStream()
+    pq.write_table(table, sink, compression="zstd")
+    return bytes(sink.getvalue().to_pybytes())
+
+
+def write_folder(out: Path, files: Mapping[str, bytes]) -> None:
+    """Write ``files`` (name → content) as the folder ``out``, all or nothing, the same way
+    as write_outputs: a hidden temporary folder beside it, every file flushed, then renamed."""
+    out = out.absolute()
+    parent = out.parent
+    try:
+        parent.mkdir(parents=True, exist_ok=True)
+        if out.exists() and not out.is_dir():
+            raise OutputError("output path exists and is not a folder", file=str(out))
+        tmp = parent / f".{out.name}.partial-{os.getpid()}"
+        if tmp.exists():
+            shutil.rmtree(tmp)
+        tmp.mkdir()
+        for name, payload in files.items():
+            _write(tmp / name, payload)
         old = parent / f".{out.name}.old-{os.getpid()}"
         if out.exists():
             out.rename(old)

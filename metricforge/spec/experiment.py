@@ -11,7 +11,7 @@ from metricforge.schema import EVENT_COLUMNS
 from metricforge.spec.filters import load_filter
 from metricforge.spec.metrics import load_library
 from metricforge.spec.model import ExperimentSpec, MetricDef, Plan
-from metricforge.spec.tomlfile import Section, read_toml
+from metricforge.spec.tomlfile import Section, TomlFile, read_toml
 
 
 def _datetime(sec: Section, key: str) -> dt.datetime:
@@ -144,6 +144,13 @@ def filters_folder(spec: ExperimentSpec) -> Path:
 def load_plan(path: Path, *, bot_filter: str | None = None) -> Plan:
     """Spec + library + filter → the Plan, with every reference checked."""
     spec = load_spec(path)
+    return assemble_plan(spec, bot_filter=bot_filter, filters=None)
+
+
+def assemble_plan(spec: ExperimentSpec, *, bot_filter: str | None, filters: Path | None) -> Plan:
+    """The Plan of a loaded spec: its library (``spec.definition_paths``) and the bot filter
+    ``bot_filter`` (default: the spec's) from ``filters`` (default: the spec's folder)."""
+    path = spec.path
     library = load_library(spec.definition_paths)
     reported = spec.roles()
     for name, role in reported:
@@ -154,7 +161,7 @@ def load_plan(path: Path, *, bot_filter: str | None = None) -> Plan:
                 file=str(path),
                 key=f"metrics.{key}",
                 suggestion=closest(name, library),
-                line=read_toml(path).line_of("metrics", key),
+                line=TomlFile(path, spec.text, {}).line_of("metrics", key),
             )
     needed: list[MetricDef] = []
 
@@ -168,7 +175,7 @@ def load_plan(path: Path, *, bot_filter: str | None = None) -> Plan:
     for name, _ in reported:
         add(name)
     ref = bot_filter or spec.bot_filter_ref
-    flt = load_filter(filters_folder(spec), ref, spec_file=str(path))
+    flt = load_filter(filters or filters_folder(spec), ref, spec_file=str(path))
     return Plan(
         spec=spec,
         bot_filter=flt,
