@@ -26,7 +26,7 @@ from metricforge.errors import SpecError
 from metricforge.spec.experiment import load_spec
 from metricforge.stats import Moments
 from metricforge.stats.contrasts import contrast, factorial_terms
-from tests.conftest import ROOT, event, exposure, write_case
+from tests.conftest import ROOT, SPEC, event, exposure, write_case
 
 
 def _design(k: int) -> tuple[list[str], dict[str, list[int]]]:
@@ -131,31 +131,19 @@ def test_terms_name_and_weigh_a_two_by_two() -> None:
 
 # --------------------------------------------------------------------------- spec
 
-FACTORIAL_SPEC = """\
-[experiment]
-name = "case"
-unit = "cookie_id"
-control = "control"
-variants = {{ control = 25, big_photo = 25, red_button = 25, big_red = 25 }}
-start = 2026-09-15T00:00:00Z
-end = 2026-09-29T00:00:00Z
-window_days = 14
-alpha = 0.05
-bot_filter = "bots@1"
+VARIANTS = "control = 25, big_photo = 25, red_button = 25, big_red = 25"
 
-[data]
-events = "events"
-exposures = "exposures.parquet"
-definitions = ["{defs}"]
 
-[metrics]
-decision = "revenue"
-guardrails = ["refunds"]
-diagnostics = ["purchases", "buyer_share"]
+def factorial_spec(factors: str, variants: str = VARIANTS) -> str:
+    """The shared small case's spec with four variants, a guardrail and ``[factors]``."""
+    text = SPEC.replace("control = 50, treatment = 50", variants).format(
+        defs=(ROOT / "metric_defs").as_posix(),
+        decision="revenue",
+        diagnostics='["purchases", "buyer_share"]',
+    )
+    return text.replace("guardrails = []", 'guardrails = ["refunds"]') + "\n[factors]\n" + factors
 
-[factors]
-{factors}
-"""
+
 GOOD_FACTORS = """\
 photo_size = { control = "small", big_photo = "large", red_button = "small", big_red = "large" }
 button_colour = { control = "blue", big_photo = "blue", red_button = "red", big_red = "red" }
@@ -164,7 +152,7 @@ button_colour = { control = "blue", big_photo = "blue", red_button = "red", big_
 
 def _spec(folder: Path, factors: str) -> Path:
     path = folder / "spec.toml"
-    path.write_text(FACTORIAL_SPEC.format(defs=(ROOT / "metric_defs").as_posix(), factors=factors))
+    path.write_text(factorial_spec(factors))
     return path
 
 
@@ -207,10 +195,10 @@ def test_bad_factors_are_one_line_errors(tmp_path: Path, factors: str, message: 
 
 
 def test_incomplete_design_is_an_error(tmp_path: Path) -> None:
-    text = FACTORIAL_SPEC.replace(", big_red = 25", "").format(
-        defs=(ROOT / "metric_defs").as_posix(),
-        factors='a = { control = "x", big_photo = "y", red_button = "x" }\n'
+    text = factorial_spec(
+        'a = { control = "x", big_photo = "y", red_button = "x" }\n'
         'b = { control = "x", big_photo = "x", red_button = "y" }\n',
+        variants=VARIANTS.replace(", big_red = 25", ""),
     )
     (tmp_path / "spec.toml").write_text(text)
     with pytest.raises(SpecError, match="need 4 variants"):
@@ -237,8 +225,7 @@ def _factorial_case(folder: Path) -> tuple[Path, dict[str, list[float]]]:
                 events.append(event(unit, "purchase", 2 + j, value=value))
                 total += value
             revenue[variant].append(total)
-    spec_text = FACTORIAL_SPEC.format(defs=(ROOT / "metric_defs").as_posix(), factors=GOOD_FACTORS)
-    return write_case(folder, events, exposures, spec_text=spec_text), revenue
+    return write_case(folder, events, exposures, spec_text=factorial_spec(GOOD_FACTORS)), revenue
 
 
 def test_factorial_rows_and_adjustments_on_a_small_pipeline(tmp_path: Path) -> None:

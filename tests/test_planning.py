@@ -25,7 +25,7 @@ from metricforge.errors import SpecError
 from metricforge.spec import load_plan
 from metricforge.spec.model import Plan
 from tests.conftest import PIPELINES, SAMPLE
-from tests.test_pre_period import unit_rows
+from tests.test_pre_period import first_exposures, unit_rows
 
 START, END = dt.datetime(2026, 9, 15), dt.datetime(2026, 9, 29)
 DAYS = 14
@@ -47,16 +47,7 @@ def report(history: Plan) -> planning.PlanReport:
 
 
 def test_halves_and_first_day_match_independent_computation(rows: pl.DataFrame) -> None:
-    exposures = (
-        pl.read_parquet(SAMPLE / "exposures.parquet")
-        .filter(
-            (pl.col("experiment") == "checkout_layout")
-            & (pl.col("ts") >= START)
-            & (pl.col("ts") < END)
-        )
-        .group_by("unit_id")
-        .agg(pl.col("ts").min().alias("first_ts"))
-    )
+    exposures = first_exposures()
     events = pl.read_parquet(SAMPLE / "events" / "**" / "*.parquet", hive_partitioning=False)
     middle = pl.col("first_ts") - dt.timedelta(days=DAYS / 2)
     pre = events.join(exposures, left_on="cookie_id", right_on="unit_id").filter(
