@@ -8,7 +8,7 @@ import math
 
 import numpy as np
 import pytest
-from hypothesis import given
+from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import stats as sst
 from statsmodels.stats.multitest import multipletests
@@ -171,6 +171,7 @@ def test_benjamini_hochberg_worked_example() -> None:
     [(holm, "holm"), (benjamini_hochberg, "fdr_bh"), (bonferroni, "bonferroni")],
     ids=["holm", "bh", "bonferroni"],
 )
+@settings(max_examples=30, deadline=None)  # multipletests' Holm takes ~0.1 s a call
 @given(p=st.lists(st.floats(0, 1), min_size=1, max_size=40))
 def test_adjusted_p_values_equal_multipletests(ours, method: str, p: list[float]) -> None:  # type: ignore[no-untyped-def]
     """Reference library: statsmodels multipletests, adjusted p-values and rejections."""

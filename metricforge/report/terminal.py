@@ -29,7 +29,7 @@ def _finite(value: Any) -> bool:
 
 def _role(row: dict[str, Any]) -> str:
     """The role, with a guardrail's one-sided test: harm, or non-inferiority and its margin."""
-    if row["role"] != "guardrail":
+    if row["role"] != "guardrail" or row["contrast"] is not None:
         return str(row["role"])
     if row["margin"] is None:
         return "guardrail (harm)"
@@ -62,7 +62,11 @@ def render(card: Scorecard, console: Console) -> None:
         "p (adj)",
         "method",
     ):
-        table.add_column(col, justify="left" if col in ("metric", "role", "method") else "right")
+        table.add_column(
+            col,
+            justify="left" if col in ("metric", "role", "method") else "right",
+            overflow="fold",
+        )
     for r in card.rows:
         p = r["p_value_adjusted"] if _finite(r["p_value_adjusted"]) else r["p_value"]
         significant = _finite(p) and p < r["alpha"]

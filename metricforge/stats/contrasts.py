@@ -67,7 +67,7 @@ def contrast(
         ci_high=estimate + half,
         p_value=p,
         positive=math.fsum(x for x, w in zip(parts, weights, strict=True) if w > 0),
-        negative=-math.fsum(x for x, w in zip(parts, weights, strict=True) if w < 0),
+        negative=0.0 - math.fsum(x for x, w in zip(parts, weights, strict=True) if w < 0),
         method="delta" if ratio else "welch",
     )
 
