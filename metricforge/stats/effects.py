@@ -37,7 +37,6 @@ from metricforge.stats.moments import (
     FloatArray,
     Moments,
     MomentsBatch,
-    _checked,
     delta_ratio,
     ratio_point_and_variance,
 )
@@ -114,6 +113,8 @@ def compare_batch(
     margin: float | None = None,
 ) -> EffectBatch:
     """Treatment ``t`` against control ``c``, element by element (see the module doc)."""
+    if not 0.0 < alpha < 1.0:
+        raise StatsError(f"alpha must lie strictly between 0 and 1, is {alpha}")
     if side not in (-1, 0, 1) or (margin is not None and (side == 0 or not margin > 0)):
         raise StatsError("a margin needs a one-sided test (side ±1) and must be positive")
     t_val, v_t = delta_ratio(t)
@@ -180,11 +181,8 @@ def compare(
     margin: float | None = None,
 ) -> Effect:
     """One treatment against its control, with every input checked (see the module doc)."""
-    if not 0.0 < alpha < 1.0:
-        raise StatsError(f"alpha must lie strictly between 0 and 1, is {alpha}")
     for arm in (treatment, control):
-        _checked(arm)
-        ratio_point_and_variance(arm)  # raises on overflow
+        ratio_point_and_variance(arm)  # raises a StatsError on unusable moments
     batch = compare_batch(
         MomentsBatch.of([treatment]),
         MomentsBatch.of([control]),
