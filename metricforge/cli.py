@@ -100,6 +100,33 @@ def run(
 
 
 @app.command()
+def plan(
+    pipeline: PipelineArg,
+    mde: Annotated[
+        str | None, typer.Option(help="Relative effect to detect, e.g. 2% or 0.02.")
+    ] = None,
+    days: Annotated[int | None, typer.Option(help="Print the MDE after this many days.")] = None,
+    power: Annotated[float, typer.Option(help="Power to detect the effect.")] = 0.8,
+    history_days: Annotated[
+        int | None, typer.Option(help="Pre-period days per unit (default: window_days).")
+    ] = None,
+) -> None:
+    """Units and days for --mde at the given power, or the MDE after --days, from the
+    pre-period logs, with and without CUPED."""
+    from metricforge import planning
+    from metricforge.engines.duckdb import DuckDBEngine
+    from metricforge.spec import load_plan
+
+    def action() -> None:
+        effect = planning.parse_mde(mde) if mde is not None else None
+        history = planning.history_plan(load_plan(pipeline), history_days)
+        report = planning.estimate(history, DuckDBEngine(), mde=effect, days=days, power=power)
+        planning.render(report, out_console)
+
+    _guard(action)
+
+
+@app.command()
 def sql(
     pipeline: PipelineArg,
     dialect: Annotated[Dialect, typer.Option(help="SQL dialect to print.")] = Dialect.duckdb,

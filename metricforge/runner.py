@@ -141,6 +141,8 @@ def reshape(plan: Plan, stamp: Stamp, files: list[InputFile], table: pa.Table) -
 def _moments(metric: MetricDef, row: dict[str, object]) -> Moments:
     cols = result_columns(metric)
     n = int(row[cols.n] or 0)  # type: ignore[call-overload]
+    if cols.successes is not None:
+        return Moments.of_proportion(n, int(row[cols.successes] or 0))  # type: ignore[call-overload]
     var_x = _f(row[cols.var_x])
     if metric.is_ratio:
         assert cols.mean_y and cols.var_y and cols.cov_xy

@@ -124,11 +124,13 @@ def test_compares_on_shared_columns(demo: Path, tmp_path: Path) -> None:
     path_a, path_b = tmp_path / "a" / "scorecard.parquet", tmp_path / "b" / "scorecard.parquet"
     pq.write_table(pq.read_table(path_a).drop_columns(["unit_label"]), path_a)
     b = pq.read_table(path_b)
-    pq.write_table(b.append_column("p_value_adjusted", pa.array([0.5] * b.num_rows)), path_b)
+    pq.write_table(
+        b.append_column("figure_from_a_newer_tool", pa.array([0.5] * b.num_rows)), path_b
+    )
     result = invoke("compare", tmp_path / "a", tmp_path / "b", "--out", tmp_path / "cmp")
     assert result.exit_code == 0, result.output
     data = json.loads((tmp_path / "cmp" / "comparison.json").read_text())
-    assert "unit_label" not in data["columns"] and "p_value_adjusted" not in data["columns"]
+    assert "unit_label" not in data["columns"] and "figure_from_a_newer_tool" not in data["columns"]
     assert "value" in data["columns"] and "p_value" in data["columns"]
 
 

@@ -189,3 +189,38 @@ def test_values_are_finite(scorecards: dict[str, Path]) -> None:
         for row in json.loads((path / "scorecard.json").read_text())["metrics"]:
             assert row["p_value"] is not None and 0 <= row["p_value"] <= 1
             assert math.isfinite(row["value"])
+
+
+def test_methods_hypotheses_and_adjusted_p_values(scorecards: dict[str, Path]) -> None:
+    """The demo shows the method of every row, each guardrail's one-sided test and the
+    adjusted p-values: Holm for the decision metric across arms, Benjamini–Hochberg
+    across the diagnostics (statsmodels multipletests as the reference library)."""
+    from statsmodels.stats.multitest import multipletests
+
+    rows = json.loads((scorecards["checkout_layout"] / "scorecard.json").read_text())["metrics"]
+    by_metric = {r["metric"]: r for r in rows}
+    expected = {
+        "revenue": "welch",
+        "buyer_share": "newcombe+z",
+        "click_through": "delta",
+        "session_success": "delta",
+        "net_value": "welch",
+    }
+    for metric, method in expected.items():
+        assert by_metric[metric]["method"] == method
+    decision = by_metric["revenue"]
+    assert decision["p_value_adjusted"] == decision["p_value"]  # Holm over one arm
+    assert decision["adjustment"].startswith("holm")
+    diagnostics = [r for r in rows if r["role"] == "diagnostic"]
+    bh = multipletests([r["p_value"] for r in diagnostics], method="fdr_bh")[1]
+    assert [r["p_value_adjusted"] for r in diagnostics] == pytest.approx(bh, rel=1e-12)
+    assert {r["adjustment"] for r in diagnostics} == {
+        "bh: 7 diagnostic tests (7 metrics x 1 arm(s))"
+    }
+    unsub, latency = by_metric["unsubscribes"], by_metric["page_latency"]
+    assert unsub["hypothesis"] == "one-sided harm: higher is worse"
+    assert latency["hypothesis"] == "non-inferiority, margin 2% of control: higher is worse"
+    assert latency["margin"] == 0.02
+    assert unsub["p_value_adjusted"] is None and latency["p_value_adjusted"] is None
+    # the true +50% on unsubscribes is the harm the guardrail is there to catch
+    assert unsub["p_value"] < 0.05

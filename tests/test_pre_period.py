@@ -55,11 +55,9 @@ def test_experiment_period_columns_do_not_change(rows: tuple[pl.DataFrame, pl.Da
     }
 
 
-def test_pre_period_values_match_independent_computation(
-    rows: tuple[pl.DataFrame, pl.DataFrame],
-) -> None:
-    with_pre = rows[1]
-    exposures = (
+def first_exposures() -> pl.DataFrame:
+    """Each exposed unit's first exposure to the demo's checkout_layout (polars)."""
+    return (
         pl.read_parquet(SAMPLE / "exposures.parquet")
         .filter(
             (pl.col("experiment") == "checkout_layout")
@@ -69,6 +67,13 @@ def test_pre_period_values_match_independent_computation(
         .group_by("unit_id")
         .agg(pl.col("ts").min().alias("first_ts"))
     )
+
+
+def test_pre_period_values_match_independent_computation(
+    rows: tuple[pl.DataFrame, pl.DataFrame],
+) -> None:
+    with_pre = rows[1]
+    exposures = first_exposures()
     events = pl.read_parquet(SAMPLE / "events" / "**" / "*.parquet", hive_partitioning=False)
     pre = events.join(exposures, left_on="cookie_id", right_on="unit_id").filter(
         (pl.col("ts") < pl.col("first_ts"))

@@ -43,10 +43,15 @@ class MetricColumns:
     mean_y: str | None = None
     var_y: str | None = None
     cov_xy: str | None = None
+    successes: str | None = None  # proportions: the exact count of units with value 1
 
 
 def result_columns(metric: MetricDef) -> MetricColumns:
     base = metric.name
+    if metric.kind is Kind.PROPORTION:
+        return MetricColumns(
+            f"{base}__n", f"{base}__mean_x", f"{base}__var_x", successes=f"{base}__successes"
+        )
     if metric.is_ratio:
         return MetricColumns(
             f"{base}__n",
@@ -89,6 +94,20 @@ def _event_condition(metric: MetricDef, events: str) -> exp.Expr:
         kinds = _col("event", events).isin(*[_lit(e) for e in metric.events])
     where = exp.paren(qualify(metric.where, events)) if metric.where is not None else None
     return _and(kinds, where)
+
+
+def aggregate(
+    cls: type[exp.Func], this: exp.Expr, other: exp.Expr | None = None, *, ordered: bool
+) -> exp.Expr:
+    """An aggregate of one or two per-unit values; ordered by unit where the engine's float
+    summation depends on the order (DuckDB), so that parallel runs are bit-identical."""
+    if ordered:  # DuckDB takes the ORDER BY after the last argument
+        by = [exp.Ordered(this=_col("unit"))]
+        if other is None:
+            this = exp.Order(this=this, expressions=by)
+        else:
+            other = exp.Order(this=other, expressions=by)
+    return cls(this=this) if other is None else cls(this=this, expression=other)
 
 
 class _Builder:
@@ -140,8 +159,10 @@ class _Builder:
             _col("ts", e) < _ts(last),
         )
         # With a pre-period, every experiment-period part is limited to events at or after
-        # the first exposure, and each metric gets a pre-period twin (prefix `pre`).
+        # the first exposure, and each metric gets a twin per earlier period (`pre`, and for
+        # planning `pre1`/`pre2`, the two halves of the pre-period).
         in_window = _col("ts", e) >= _col("first_ts", f) if pre else None
+        periods = self._periods(e, f)
         n_events: exp.Expr = (
             exp.Count(this=_case(in_window, _lit(1)))
             if in_window is not None
@@ -154,10 +175,9 @@ class _Builder:
             exp.alias_(_col("session_id", e), "session"),
             exp.alias_(n_events, "n_events"),
         )
-        if in_window is not None:
-            before = exp.paren(in_window.copy()).not_()
+        for period, cond in periods:
             select = select.select(
-                exp.alias_(exp.Count(this=_case(before, _lit(1))), "n_pre_events")
+                exp.alias_(exp.Count(this=_case(cond.copy(), _lit(1))), f"n_{period}_events")
             )
         for i, rule in enumerate(self.plan.bot_filter.rules):
             flag = self._rule_flag(rule, e)
@@ -168,16 +188,31 @@ class _Builder:
                 )
         for metric in self.plan.metrics:
             select = select.select(*self._session_parts(metric, e, "", in_window))
-            if in_window is not None:
-                before = exp.paren(in_window.copy()).not_()
-                select = select.select(*self._session_parts(metric, e, "pre", before))
+            for period, cond in periods:
+                select = select.select(*self._session_parts(metric, e, period, cond))
+        keys = [_col("unit", f), _col("variant", f), _col("n_variants", f)]
+        if self.plan.history_split:
+            select = select.select(_col("first_ts", f))
+            keys.append(_col("first_ts", f))
         return (
             select.from_(exp.alias_(exp.to_table("first_exposure"), f, table=True))
             .join(exp.alias_(exp.to_table("events"), e, table=True), on=join_on, join_type="left")
-            .group_by(
-                _col("unit", f), _col("variant", f), _col("n_variants", f), _col("session_id", e)
-            )
+            .group_by(*keys, _col("session_id", e))
         )
+
+    def _periods(self, e: str, f: str) -> list[tuple[str, exp.Expr]]:
+        """The periods before the first exposure: (column suffix, condition on an event)."""
+        days = self.plan.pre_period_days
+        if not days:
+            return []
+        ts, first = _col("ts", e), _col("first_ts", f)
+        out: list[tuple[str, exp.Expr]] = [("pre", exp.paren(ts >= first).not_())]
+        if self.plan.history_split:  # halves, in hours so that an odd D splits evenly
+            half = exp.Interval(this=_lit(str(days * 12)), unit=exp.var("HOUR"))
+            middle = exp.Sub(this=first.copy(), expression=half)
+            out.append(("pre1", ts.copy() < middle))
+            out.append(("pre2", _and(ts.copy() >= middle.copy(), ts.copy() < first.copy())))
+        return out
 
     def _rule_flag(self, rule: BotRule, e: str) -> exp.Expr | None:
         if rule.kind is RuleKind.USER_AGENT:
@@ -266,10 +301,10 @@ class _Builder:
             exp.alias_(exp.Count(this=_col("session")), "n_sessions"),
         )
         pre = bool(self.plan.pre_period_days)
-        if pre:
-            select = select.select(
-                exp.alias_(exp.cast(exp.Sum(this=_col("n_pre_events")), BIGINT), "n_pre_events")
-            )
+        periods = [p for p, _ in self._periods("e", "f")]
+        for period in periods:
+            total = exp.cast(exp.Sum(this=_col(f"n_{period}_events")), BIGINT)
+            select = select.select(exp.alias_(total, f"n_{period}_events"))
         for i, rule in enumerate(self.plan.bot_filter.rules):
             if rule.kind in (RuleKind.USER_AGENT, RuleKind.DENY_IP):
                 select = select.select(
@@ -277,9 +312,13 @@ class _Builder:
                 )
         for metric in self.plan.metrics:
             select = select.select(*self._unit_parts(metric, "", "n_events" if pre else None))
-            if pre:
-                select = select.select(*self._unit_parts(metric, "pre", "n_pre_events"))
-        return select.from_("sessions").group_by(_col("unit"), _col("variant"), _col("n_variants"))
+            for period in periods:
+                select = select.select(*self._unit_parts(metric, period, f"n_{period}_events"))
+        keys = [_col("unit"), _col("variant"), _col("n_variants")]
+        if self.plan.history_split:
+            select = select.select(_col("first_ts"))
+            keys.append(_col("first_ts"))
+        return select.from_("sessions").group_by(*keys)
 
     def _unit_parts(self, metric: MetricDef, period: str, active: str | None) -> list[exp.Expr]:
         """A metric's per-unit columns for one period; ``active`` names the session column
@@ -357,9 +396,16 @@ class _Builder:
             exp.alias_(is_bot, "is_bot"),
             exp.alias_(_col("n_variants") > _lit(1), "contaminated"),
         )
-        periods = ("", "pre") if self.plan.pre_period_days else ("",)
+        periods = ["", *(p for p, _ in self._periods("e", "f"))]
         if self.plan.pre_period_days:
             select = select.select(exp.alias_(_col("n_pre_events") > _lit(0), "has_pre"))
+        if self.plan.history_split:  # whole days from the experiment start to first exposure
+            since = exp.Sub(
+                this=exp.UnixMillis(this=_col("first_ts")),
+                expression=exp.UnixMillis(this=_ts(self.spec.start)),
+            )
+            day = exp.Floor(this=exp.Div(this=exp.paren(since), expression=_lit(86_400_000)))
+            select = select.select(exp.alias_(exp.cast(day, BIGINT), "first_day"))
         for metric in self.plan.metrics:
             for period in periods:
                 x, y = self._x_y(metric, period)
@@ -370,15 +416,8 @@ class _Builder:
 
     # -- stage 5 -------------------------------------------------------------------------
     def _agg(self, cls: type[exp.Func], col: str, other: str | None = None) -> exp.Expr:
-        this: exp.Expr = _col(col)
-        if self.ordered and other is None:
-            this = exp.Order(this=this, expressions=[exp.Ordered(this=_col("unit"))])
-        if other is not None:
-            second: exp.Expr = _col(other)
-            if self.ordered:
-                second = exp.Order(this=second, expressions=[exp.Ordered(this=_col("unit"))])
-            return cls(this=this, expression=second)
-        return cls(this=this)
+        second = _col(other) if other is not None else None
+        return aggregate(cls, _col(col), second, ordered=self.ordered)
 
     def moments(self) -> exp.Select:
         select = exp.select(
@@ -400,6 +439,9 @@ class _Builder:
                 exp.alias_(self._agg(exp.Avg, x), cols.mean_x),
                 exp.alias_(self._agg(exp.Variance, x), cols.var_x),
             )
+            if cols.successes is not None:  # per-unit 0/1: an integer sum is exact
+                ones = exp.Sum(this=exp.cast(_col(x), BIGINT))
+                select = select.select(exp.alias_(ones, cols.successes))
             if metric.is_ratio:
                 y = f"y_{metric.name}"
                 assert cols.mean_y and cols.var_y and cols.cov_xy

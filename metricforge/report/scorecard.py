@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import contextlib
+import functools
 import math
 from dataclasses import dataclass
 from typing import Any
@@ -10,7 +11,9 @@ from typing import Any
 import pyarrow as pa
 
 from metricforge.errors import StatsError
+from metricforge.report.inference import TWO_SIDED, adjust, factorial_rows, hypothesis
 from metricforge.runner import RunData
+from metricforge.spec.model import MetricDef, Role
 from metricforge.stats import Effect, compare, ratio_point_and_variance, srm_test
 from metricforge.stats.independence import share_differs
 
@@ -36,6 +39,11 @@ SCORECARD_SCHEMA = pa.schema(
         ("p_value", pa.float64()),
         ("alpha", pa.float64()),
         ("method", pa.string()),
+        ("hypothesis", pa.string()),
+        ("margin", pa.float64()),
+        ("p_value_adjusted", pa.float64()),
+        ("adjustment", pa.string()),
+        ("contrast", pa.string()),
         ("unit_label", pa.string()),
         ("bot_filter", pa.string()),
         ("bot_filter_version", pa.int64()),
@@ -86,11 +94,15 @@ def _clean(row: dict[str, Any]) -> dict[str, Any]:
     }
 
 
-def _effect_fields(data: RunData, metric: str, variant: str) -> tuple[dict[str, Any], str]:
+def _effect_fields(
+    data: RunData, metric: str, variant: str, side: int, margin: float | None
+) -> tuple[dict[str, Any], str]:
     moments = data.moments[metric]
     control = data.plan.spec.control
     try:
-        effect: Effect = compare(moments[variant], moments[control], alpha=data.plan.spec.alpha)
+        effect: Effect = compare(
+            moments[variant], moments[control], alpha=data.plan.spec.alpha, side=side, margin=margin
+        )
     except StatsError as err:
         fields: dict[str, Any] = {f: float("nan") for f in _EFFECT_FIELDS}
         for name, v in (("value", variant), ("control_value", control)):
@@ -98,6 +110,34 @@ def _effect_fields(data: RunData, metric: str, variant: str) -> tuple[dict[str, 
                 fields[name] = ratio_point_and_variance(moments[v])[0]
         return fields, f"not computed: {err.message}"
     return {f: float(getattr(effect, f)) for f in _EFFECT_FIELDS}, effect.method
+
+
+def _base_row(
+    data: RunData, metric: MetricDef, role: Role, stamp: dict[str, Any], variant: str
+) -> dict[str, Any]:
+    """A row with the fields every row of one metric shares; the effect fields still NaN."""
+    spec = data.plan.spec
+    return {
+        "experiment": spec.name,
+        "metric": metric.name,
+        "role": role.value,
+        "kind": metric.kind.value,
+        "direction": metric.direction.value,
+        "variant": variant,
+        "control": spec.control,
+        "n_units": 0,
+        "n_units_control": 0,
+        **{f: float("nan") for f in _EFFECT_FIELDS},
+        "alpha": spec.alpha,
+        "method": "",
+        "hypothesis": TWO_SIDED,
+        "margin": None,
+        "p_value_adjusted": float("nan"),
+        "adjustment": None,
+        "contrast": None,
+        "unit_label": metric.unit_label,
+        **stamp,
+    }
 
 
 def build(data: RunData) -> Scorecard:
@@ -116,28 +156,26 @@ def build(data: RunData) -> Scorecard:
         )
     }
     rows: list[dict[str, Any]] = []
+    margins = dict(spec.guardrail_margins)
     for name, role in data.plan.reported:
         metric = data.plan.metric(name)
+        side, tested = hypothesis(metric, role, margins.get(name))
+
+        base = functools.partial(_base_row, data, metric, role, row_stamp)
         for variant in spec.variant_names[1:]:
-            fields, method = _effect_fields(data, name, variant)
-            rows.append(
-                {
-                    "experiment": spec.name,
-                    "metric": name,
-                    "role": role.value,
-                    "kind": metric.kind.value,
-                    "direction": metric.direction.value,
-                    "variant": variant,
-                    "control": spec.control,
-                    "n_units": data.moments[name][variant].n,
-                    "n_units_control": data.moments[name][spec.control].n,
-                    **fields,
-                    "alpha": spec.alpha,
-                    "method": method,
-                    "unit_label": metric.unit_label,
-                    **row_stamp,
-                }
+            fields, method = _effect_fields(data, name, variant, side, margins.get(name))
+            row = base(variant)
+            row.update(
+                n_units=data.moments[name][variant].n,
+                n_units_control=data.moments[name][spec.control].n,
+                method=method,
+                hypothesis=tested,
+                margin=margins.get(name),
+                **fields,
             )
+            rows.append(row)
+        rows += factorial_rows(data, name, base)
+    adjust(rows)
     return Scorecard(
         rows=rows, trust=trust_section(data), variants=variant_section(data), stamp=stamp
     )

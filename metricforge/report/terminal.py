@@ -23,6 +23,19 @@ def _pct(value: Any) -> str:
     return f"{100 * value:+.2f}%"
 
 
+def _finite(value: Any) -> bool:
+    return isinstance(value, float) and math.isfinite(value)
+
+
+def _role(row: dict[str, Any]) -> str:
+    """The role, with a guardrail's one-sided test: harm, or non-inferiority and its margin."""
+    if row["role"] != "guardrail" or row["contrast"] is not None:
+        return str(row["role"])
+    if row["margin"] is None:
+        return "guardrail (harm)"
+    return f"guardrail (NI {100 * row['margin']:.4g}%)"
+
+
 def render(card: Scorecard, console: Console) -> None:
     trust = card.trust
     verdict = trust["verdict"].upper()
@@ -46,24 +59,28 @@ def render(card: Scorecard, console: Console) -> None:
         "control",
         "abs effect (CI)",
         "rel effect (CI)",
-        "p",
+        "p (adj)",
         "method",
     ):
-        table.add_column(col, justify="left" if col in ("metric", "role", "method") else "right")
-    for r in card.rows:
-        significant = (
-            r["p_value"] is not None and math.isfinite(r["p_value"]) and (r["p_value"] < r["alpha"])
+        table.add_column(
+            col,
+            justify="left" if col in ("metric", "role", "method") else "right",
+            overflow="fold",
         )
+    for r in card.rows:
+        p = r["p_value_adjusted"] if _finite(r["p_value_adjusted"]) else r["p_value"]
+        significant = _finite(p) and p < r["alpha"]
         table.add_row(
             r["metric"],
-            r["role"],
+            _role(r),
             r["variant"],
             str(r["n_units"]),
             _num(r["value"]),
             _num(r["control_value"]),
             f"{_num(r['abs_effect'])} ({_num(r['abs_ci_low'])}, {_num(r['abs_ci_high'])})",
             f"{_pct(r['rel_effect'])} ({_pct(r['rel_ci_low'])}, {_pct(r['rel_ci_high'])})",
-            _num(r["p_value"], 3),
+            _num(r["p_value"], 3)
+            + (f" ({_num(r['p_value_adjusted'], 3)})" if _finite(r["p_value_adjusted"]) else ""),
             r["method"],
             style="bold" if significant else None,
         )

@@ -10,7 +10,7 @@ from metricforge.errors import SpecError, closest
 from metricforge.schema import EVENT_COLUMNS
 from metricforge.spec.filters import load_filter
 from metricforge.spec.metrics import load_library
-from metricforge.spec.model import ExperimentSpec, MetricDef, Plan
+from metricforge.spec.model import ExperimentSpec, Factor, MetricDef, Plan
 from metricforge.spec.tomlfile import Section, TomlFile, read_toml
 
 
@@ -30,7 +30,7 @@ def _datetime(sec: Section, key: str) -> dt.datetime:
 def load_spec(path: Path) -> ExperimentSpec:
     toml = read_toml(path)
     top = Section(toml, (), toml.data)
-    top.check_keys({"experiment", "data", "metrics"})
+    top.check_keys({"experiment", "data", "metrics", "factors"})
     ex = top.sub("experiment")
     ex.check_keys(
         {
@@ -51,7 +51,7 @@ def load_spec(path: Path) -> ExperimentSpec:
     data = top.sub("data")
     data.check_keys({"events", "exposures", "definitions", "filters"})
     met = top.sub("metrics")
-    met.check_keys({"decision", "guardrails", "diagnostics"})
+    met.check_keys({"decision", "guardrails", "diagnostics", "guardrail_margins"})
 
     unit = ex.req_str("unit")
     if unit not in EVENT_COLUMNS or EVENT_COLUMNS[unit] != "string":
@@ -104,6 +104,8 @@ def load_spec(path: Path) -> ExperimentSpec:
         if name in seen:
             raise met.error(f"metric '{name}' is listed twice", "guardrails")
         seen.add(name)
+    margins = _margins(met, guardrails)
+    factors = _factors(top.sub("factors"), control, names) if top.has("factors") else ()
     return ExperimentSpec(
         name=ex.req_str("name"),
         description=ex.text("description", "") or "",
@@ -126,7 +128,64 @@ def load_spec(path: Path) -> ExperimentSpec:
         decision=decision,
         guardrails=guardrails,
         diagnostics=diagnostics,
+        guardrail_margins=margins,
+        factors=factors,
     )
+
+
+def _margins(met: Section, guardrails: tuple[str, ...]) -> tuple[tuple[str, float], ...]:
+    """[metrics] guardrail_margins = { metric = m }: relative non-inferiority margins."""
+    if not met.has("guardrail_margins"):
+        return ()
+    sec = met.sub("guardrail_margins")
+    out = []
+    for name in sec.table:
+        if name not in guardrails:
+            raise sec.error(
+                f"'{name}' is not a guardrail {list(guardrails)}",
+                name,
+                suggestion=closest(name, guardrails),
+            )
+        margin = sec.number(name)
+        if not 0.0 < margin < 1.0:
+            raise sec.error("a margin is a fraction of the control value, 0 < m < 1", name)
+        out.append((name, margin))
+    return tuple(out)
+
+
+def _factors(sec: Section, control: str, variants: list[str]) -> tuple[Factor, ...]:
+    """[factors] name = { variant = "level", ... }: a full two-level factorial design."""
+    factors = []
+    for name in sec.table:
+        table = sec.sub(name)
+        for variant in table.table:
+            if variant not in variants:
+                raise table.error(
+                    f"unknown variant '{variant}'", variant, suggestion=closest(variant, variants)
+                )
+        missing = [v for v in variants if v not in table.table]
+        if missing:
+            raise sec.error(f"variant '{missing[0]}' has no level of this factor", name)
+        levels = tuple((v, table.req_str(v)) for v in variants)
+        if len({lv for _, lv in levels}) != 2:
+            raise sec.error("a factor needs exactly two levels", name)
+        factors.append(Factor(name, levels, dict(levels)[control]))
+    if len(factors) < 2:
+        raise sec.error("a factorial design needs at least two factors")
+    cells: dict[tuple[int, ...], str] = {}
+    for variant in variants:
+        cell = tuple(f.coded(variant) for f in factors)
+        if cell in cells:
+            raise sec.error(
+                f"variants '{cells[cell]}' and '{variant}' have the same levels of every factor"
+            )
+        cells[cell] = variant
+    if len(cells) != 2 ** len(factors):
+        raise sec.error(
+            f"{len(factors)} two-level factors need {2 ** len(factors)} variants, one per"
+            f" combination of levels; the spec has {len(variants)}"
+        )
+    return tuple(factors)
 
 
 def filters_folder(spec: ExperimentSpec) -> Path:

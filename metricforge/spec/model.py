@@ -106,6 +106,18 @@ class BotFilter:
 
 
 @dataclass(frozen=True)
+class Factor:
+    """One factor of a factorial design: every variant's level; level 0 is the control's."""
+
+    name: str
+    levels: tuple[tuple[str, str], ...]  # (variant, level name)
+    baseline: str  # the control's level
+
+    def coded(self, variant: str) -> int:
+        return 0 if dict(self.levels)[variant] == self.baseline else 1
+
+
+@dataclass(frozen=True)
 class ExperimentSpec:
     name: str
     path: Path
@@ -128,6 +140,9 @@ class ExperimentSpec:
     srm_alpha: float = 0.001
     description: str = ""
     pre_period_days: int = 0  # days before each unit's first exposure to read (0: none)
+    # relative non-inferiority margin per guardrail ([metrics] guardrail_margins)
+    guardrail_margins: tuple[tuple[str, float], ...] = ()
+    factors: tuple[Factor, ...] = ()  # [factors]: a full 2^k factorial design, or none
 
     @property
     def variant_names(self) -> tuple[str, ...]:
@@ -152,6 +167,11 @@ class Plan:
     # pre-period, `unit_rows` also holds every metric's pre-period values (`xpre_<name>`,
     # `ypre_<name>`) and `has_pre`; experiment-period columns are unchanged.
     pre_period_days: int = 0
+    # Planning only (needs pre_period_days > 0): `unit_rows` also holds `first_day` (whole
+    # days from the experiment start to the unit's first exposure) and every metric's
+    # values over the earlier and the later half of the pre-period (`xpre1_`, `ypre1_`,
+    # `xpre2_`, `ypre2_`).
+    history_split: bool = False
 
     def metric(self, name: str) -> MetricDef:
         for m in self.metrics:

@@ -3,9 +3,15 @@
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
 
+import numpy as np
+import numpy.typing as npt
+
 from metricforge.errors import StatsError
+
+FloatArray = npt.NDArray[np.float64]
 
 
 @dataclass(frozen=True, slots=True)
@@ -13,7 +19,8 @@ class Moments:
     """Per-variant sufficient statistics of a metric that is a ratio of per-unit sums X / Y.
 
     For a per-unit mean metric Y is 1 for every unit: mean_y = 1, var_y = cov_xy = 0.
-    Variances and the covariance use the divisor n - 1.
+    Variances and the covariance use the divisor n - 1. A proportion metric (per-unit
+    value 0 or 1) also carries its exact count of units with value 1 in ``successes``.
     """
 
     n: int
@@ -22,18 +29,101 @@ class Moments:
     var_x: float
     var_y: float
     cov_xy: float
+    successes: int | None = None
 
     @classmethod
     def of_mean(cls, n: int, mean: float, var: float) -> Moments:
         return cls(n=n, mean_x=mean, mean_y=1.0, var_x=var, var_y=0.0, cov_xy=0.0)
 
+    @classmethod
+    def of_proportion(cls, n: int, successes: int) -> Moments:
+        """n units of which ``successes`` have the value 1: mean s/n, variance s(n-s)/(n(n-1))."""
+        if not (n == int(n) and successes == int(successes) and 0 <= successes <= n):
+            raise StatsError(f"a proportion needs whole counts 0 <= {successes} <= {n}")
+        n, successes = int(n), int(successes)
+        var = successes * (n - successes) / n / (n - 1) if n > 1 else 0.0
+        return cls(n, successes / n if n else math.nan, 1.0, var, 0.0, 0.0, successes)
+
     @property
     def is_ratio(self) -> bool:
         return self.var_y > 0 or self.mean_y != 1.0
 
+    @property
+    def is_proportion(self) -> bool:
+        return self.successes is not None
 
-def _checked(m: Moments) -> tuple[float, float, float, float, float]:
-    """The moments as floats, or a StatsError saying why they cannot be used."""
+
+@dataclass(frozen=True)
+class MomentsBatch:
+    """Many variants' (or many simulated experiments') moments as arrays of equal shape.
+
+    The vectorised statistics take these; they do not validate (see ``Moments``).
+    ``successes`` is set only when every element is a proportion.
+    """
+
+    n: FloatArray
+    mean_x: FloatArray
+    mean_y: FloatArray
+    var_x: FloatArray
+    var_y: FloatArray
+    cov_xy: FloatArray
+    successes: FloatArray | None = None
+
+    @classmethod
+    def of(cls, arms: Sequence[Moments]) -> MomentsBatch:
+        def col(name: str) -> FloatArray:
+            return np.array([float(getattr(m, name)) for m in arms], dtype=np.float64)
+
+        props = all(m.successes is not None for m in arms)
+        return cls(
+            col("n"),
+            col("mean_x"),
+            col("mean_y"),
+            col("var_x"),
+            col("var_y"),
+            col("cov_xy"),
+            col("successes") if props else None,
+        )
+
+    @classmethod
+    def of_means(cls, n: npt.ArrayLike, mean: npt.ArrayLike, var: npt.ArrayLike) -> MomentsBatch:
+        m, v = np.asarray(mean, np.float64), np.asarray(var, np.float64)
+        n_ = np.broadcast_to(np.asarray(n, np.float64), m.shape)
+        return cls(n_, m, np.ones_like(m), v, np.zeros_like(m), np.zeros_like(m))
+
+    @classmethod
+    def of_proportions(cls, n: npt.ArrayLike, successes: npt.ArrayLike) -> MomentsBatch:
+        s = np.asarray(successes, np.float64)
+        n_ = np.broadcast_to(np.asarray(n, np.float64), s.shape)
+        with np.errstate(all="ignore"):
+            var = s * (n_ - s) / n_ / (n_ - 1)
+        batch = cls.of_means(n_, s / n_, var)
+        return cls(batch.n, batch.mean_x, batch.mean_y, batch.var_x, batch.var_y, batch.cov_xy, s)
+
+    @property
+    def is_ratio(self) -> npt.NDArray[np.bool_]:
+        return np.asarray((self.var_y > 0) | (self.mean_y != 1.0), dtype=np.bool_)
+
+
+def delta_ratio(b: MomentsBatch) -> tuple[FloatArray, FloatArray]:
+    """Vectorised mean_x / mean_y and the delta-method variance of that estimator.
+
+    Var ≈ (1/n)[σx²/μy² − 2μx σxy/μy³ + μx² σy²/μy⁴], evaluated as the variance of the
+    per-unit residual X − rY over n μy² with r = μx/μy (the same expression, without
+    powers of μy that overflow). For a mean metric it is exactly σx²/n. Non-finite
+    results stand for unusable moments; ``ratio_point_and_variance`` turns them into errors.
+    """
+    with np.errstate(all="ignore"):
+        r = b.mean_x / b.mean_y
+        resid = b.var_x - 2.0 * (r * b.cov_xy) + r * (r * b.var_y)  # no r² times a zero
+        # Rounding can push the residual variance of X ∝ Y slightly below zero. Dividing
+        # step by step keeps a tiny mean_y from underflowing μy² to zero.
+        var = np.maximum(resid, 0.0) / b.n / b.mean_y / b.mean_y
+    return r, np.where(np.isfinite(resid), var, resid)
+
+
+def _checked(m: Moments) -> None:
+    """A StatsError saying why the moments cannot be used, if they cannot."""
     if m.n < 2:
         raise StatsError(f"needs at least 2 units, has {m.n}")
     mx, my, vx, vy, cxy = (float(v) for v in (m.mean_x, m.mean_y, m.var_x, m.var_y, m.cov_xy))
@@ -45,23 +135,16 @@ def _checked(m: Moments) -> tuple[float, float, float, float, float]:
         raise StatsError("the denominator's mean is zero for this variant")
     if vx < 0 or vy < 0:
         raise StatsError("a variance is negative: the moments were computed unstably")
-    return mx, my, vx, vy, cxy
+    if m.successes is not None and not 0 <= m.successes <= m.n:
+        raise StatsError(f"successes {m.successes} must lie between 0 and n = {m.n}")
 
 
 def ratio_point_and_variance(m: Moments) -> tuple[float, float]:
-    """mean_x / mean_y and the delta-method variance of that estimator.
-
-    Var ≈ (1/n)[σx²/μy² − 2μx σxy/μy³ + μx² σy²/μy⁴], evaluated as the variance of the
-    per-unit residual X − rY over n μy² with r = μx/μy (the same expression, without
-    powers of μy that overflow). For a mean metric it is exactly σx²/n.
-    """
-    mx, my, vx, vy, cxy = _checked(m)
-    r = mx / my
-    if not math.isfinite(r):
+    """mean_x / mean_y and the delta-method variance of that estimator (see ``delta_ratio``)."""
+    _checked(m)
+    r, var = delta_ratio(MomentsBatch.of([m]))
+    if not math.isfinite(r[0]):
         raise StatsError("the ratio overflows: the denominator's mean is too close to zero")
-    resid = vx - 2.0 * (r * cxy) + r * (r * vy)  # no r² that overflows times a zero
-    if not math.isfinite(resid):
+    if not math.isfinite(var[0]):
         raise StatsError("the delta-method variance overflows: the moments are too large")
-    # Rounding can push the residual variance of X ∝ Y slightly below zero. Dividing step
-    # by step keeps a tiny mean_y from underflowing μy² to zero.
-    return r, max(resid, 0.0) / m.n / my / my
+    return float(r[0]), float(var[0])

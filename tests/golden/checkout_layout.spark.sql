@@ -163,6 +163,7 @@ SELECT
   COUNT(x_buyer_share) AS buyer_share__n,
   AVG(x_buyer_share) AS buyer_share__mean_x,
   VARIANCE(x_buyer_share) AS buyer_share__var_x,
+  SUM(CAST(x_buyer_share AS BIGINT)) AS buyer_share__successes,
   COUNT(x_mobile_purchases) AS mobile_purchases__n,
   AVG(x_mobile_purchases) AS mobile_purchases__mean_x,
   VARIANCE(x_mobile_purchases) AS mobile_purchases__var_x,
