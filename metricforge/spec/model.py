@@ -30,6 +30,13 @@ class Direction(StrEnum):
     LOWER = "lower"
 
 
+class TwoVariantPolicy(StrEnum):
+    """What happens to a unit exposed to more than one variant."""
+
+    EXCLUDE = "exclude"  # counted, then left out of the analysis (the default)
+    FIRST_EXPOSURE = "first_exposure"  # analysed in the variant of its first exposure
+
+
 class Role(StrEnum):
     DECISION = "decision"
     GUARDRAIL = "guardrail"
@@ -128,6 +135,11 @@ class ExperimentSpec:
     srm_alpha: float = 0.001
     description: str = ""
     pre_period_days: int = 0  # days before each unit's first exposure to read (0: none)
+    # Identity stitching: an id column of the events (e.g. account_id); cookies whose events
+    # carry exactly one such id are merged into one unit per id before analysis.
+    stitch_to: str | None = None
+    two_variant_units: TwoVariantPolicy = TwoVariantPolicy.EXCLUDE
+    max_two_variant_share: float = 0.05  # trust check: share of exposed units in 2+ variants
 
     @property
     def variant_names(self) -> tuple[str, ...]:
