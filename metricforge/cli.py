@@ -102,7 +102,12 @@ def lock(
     def action() -> None:
         plan = load_plan(pipeline)
         path = write_lock(plan, dt.datetime.now(dt.UTC), force=force)
-        out_console.print(f"locked {plan.spec.decision} (decision) and guardrails: {path}")
+        spec = plan.spec
+        out_console.print(
+            f"locked decision metric {spec.decision}, guardrails"
+            f" {', '.join(spec.guardrails) or 'none'} and alpha {spec.alpha:g}: {path}",
+            markup=False,
+        )
 
     _guard(action)
 
