@@ -17,9 +17,12 @@ from typing import Any
 
 import polars as pl
 import pytest
+import sqlglot
+import sqlglot.expressions as exp
 from typer.testing import CliRunner
 
 from metricforge.cli import app
+from metricforge.compile.query import compile_plan
 from metricforge.engines.duckdb import DuckDBEngine
 from metricforge.runner import execute
 from metricforge.spec import load_plan
@@ -292,3 +295,21 @@ def test_without_stitching_nothing_changes(card: dict[str, Any], tmp_path: Path)
     plain = json.loads((tmp_path / "o" / "scorecard.json").read_text())
     assert "identity" not in plain
     assert sum(v["exposed_units"] for v in plain["variants"]) == card["identity"]["exposed_ids"]
+
+
+@pytest.mark.parametrize("dialect", ["duckdb", "spark"])
+def test_stitching_stays_one_scan_and_renders_for_each_dialect(dialect: str) -> None:
+    plan = load_plan(PIPELINES / "checkout_accounts.toml")
+    run = compile_plan(plan, dialect)
+    tables = [t.name for t in run.unit_rows.find_all(exp.Table)]
+    assert tables.count("events") == 1 and tables.count("exposures") == 1
+    ctes = [c.alias for c in run.unit_rows.find_all(exp.CTE)]
+    assert ctes == ["first_exposure", "sessions", "units", "identified", "stitched"]
+    assert [name for name, _ in run.results] == [
+        "moments",
+        "exposure_days",
+        "bot_events",
+        "identities",
+    ]
+    for _, tree in run.statements(dialect):
+        sqlglot.parse_one(tree.sql(dialect=dialect), read=dialect)
