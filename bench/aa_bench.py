@@ -61,8 +61,12 @@ def main() -> None:
     shutil.rmtree(out)
     wall = {n: statistics.median(t[0] for t in ts) for n, ts in times.items()}
     cpu = {n: statistics.median(t[1] for t in ts) for n, ts in times.items()}
-    print(f"machine: {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}")
-    print(f"pipeline {args.pipeline}, {args.rounds} rounds, aa --replays {args.replays} --period {args.period}\n")
+    python = platform.python_version()
+    print(f"machine: {platform.machine()}, {os.cpu_count()} cores, Python {python}")
+    print(
+        f"pipeline {args.pipeline}, {args.rounds} rounds,"
+        f" aa --replays {args.replays} --period {args.period}\n"
+    )
     print("| process | median wall s | median CPU s | all wall s |")
     print("|---|---|---|---|")
     for name in commands:
