@@ -27,7 +27,7 @@ from metricforge.engines.duckdb import DuckDBEngine
 from metricforge.runner import execute
 from metricforge.spec import load_plan
 from metricforge.spec.model import BotRule, RuleKind
-from tests.conftest import PIPELINES, SAMPLE, T0, event, write_case
+from tests.conftest import PIPELINES, SAMPLE, T0, event, successful_sessions, write_case
 
 START, END, WINDOW = dt.datetime(2026, 9, 15), dt.datetime(2026, 9, 29), dt.timedelta(days=14)
 UA_TOKENS = ("bot", "crawler", "spider", "headless")  # bots@2 rule 1
@@ -58,10 +58,7 @@ def per_cookie(events: pl.DataFrame, experiment: str) -> pl.DataFrame:
         pl.col("ts").filter(is_("click")).alias("clicks"),
         pl.col("ts").filter(is_("back")).alias("backs"),
     )
-    good = [
-        any(not any(c < b <= c + dt.timedelta(seconds=30) for b in backs) for c in clicks)
-        for clicks, backs in zip(sessions["clicks"], sessions["backs"], strict=True)
-    ]
+    good = successful_sessions(sessions["clicks"], sessions["backs"])
     sessions = sessions.with_columns(pl.Series("good", good, dtype=pl.Int64))
     by_session = sessions.group_by("cookie_id").agg(
         ((pl.col("size") > SESSION_LIMIT) | pl.col("ua_bot")).any().alias("bot"),
