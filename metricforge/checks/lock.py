@@ -115,7 +115,7 @@ def read_lock(path: Path) -> dict[str, Any] | None:
         for e in entries
     )
     if not well_formed or not isinstance(data["alpha"], int | float):
-        raise SpecError("malformed decision, guardrails or alpha", file=str(path)) from None
+        raise SpecError("malformed decision, guardrails or alpha", file=str(path))
     return dict(data)
 
 

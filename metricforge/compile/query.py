@@ -26,7 +26,7 @@ import sqlglot.expressions as exp
 
 from metricforge.compile.checks import check_results
 from metricforge.compile.expressions import qualify
-from metricforge.compile.stitch import ordered_agg, stitch_stages
+from metricforge.compile.stitch import stitch_stages
 from metricforge.spec.model import BotRule, Kind, MetricDef, Plan, RuleKind, TwoVariantPolicy
 
 UNIT_TABLE = "unit_rows"
@@ -418,8 +418,15 @@ class _Builder:
 
     # -- stage 5 -------------------------------------------------------------------------
     def _agg(self, cls: type[exp.Func], col: str, other: str | None = None) -> exp.Expr:
-        second = _col(other) if other is not None else None
-        return ordered_agg(cls, _col(col), second, _col("unit") if self.ordered else None)
+        this: exp.Expr = _col(col)
+        if self.ordered and other is None:
+            this = exp.Order(this=this, expressions=[exp.Ordered(this=_col("unit"))])
+        if other is not None:
+            second: exp.Expr = _col(other)
+            if self.ordered:
+                second = exp.Order(this=second, expressions=[exp.Ordered(this=_col("unit"))])
+            return cls(this=this, expression=second)
+        return cls(this=this)
 
     def moments(self) -> exp.Select:
         select = exp.select(

@@ -142,7 +142,12 @@ class BucketSplitter:
     all metrics' sums in all replays; the last variant is the total minus the others."""
 
     def __init__(self, buckets: Mapping[str, BucketMoments]) -> None:
-        self.parts = {name: _Columns.of(b) for name, b in buckets.items()}
+        self.parts: dict[str, _Columns] = {}
+        for name, b in buckets.items():
+            try:
+                self.parts[name] = _Columns.of(b)
+            except StatsError as err:
+                raise StatsError(f"metric '{name}': {err.message}") from None
         self.matrix = np.hstack([p.columns for p in self.parts.values()])
         self.total = self.matrix.sum(axis=0)
         self.slices: dict[str, slice] = {}
