@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import sys
 from collections.abc import Callable
 from enum import StrEnum
@@ -122,6 +123,69 @@ def plan(
         history = planning.history_plan(load_plan(pipeline), history_days)
         report = planning.estimate(history, DuckDBEngine(), mde=effect, days=days, power=power)
         planning.render(report, out_console)
+
+    _guard(action)
+
+
+@app.command()
+def lock(
+    pipeline: PipelineArg,
+    force: Annotated[
+        bool, typer.Option("--force", help="Replace an existing lock (stamped now).")
+    ] = False,
+) -> None:
+    """Fix the decision metric, guardrails and alpha now: a lock file next to the spec."""
+    import datetime as dt
+
+    from metricforge.checks.lock import write_lock
+    from metricforge.spec import load_plan
+
+    def action() -> None:
+        plan = load_plan(pipeline)
+        path = write_lock(plan, dt.datetime.now(dt.UTC), force=force)
+        spec = plan.spec
+        out_console.print(
+            f"locked decision metric {spec.decision}, guardrails"
+            f" {', '.join(spec.guardrails) or 'none'} and alpha {spec.alpha:g}: {path}",
+            markup=False,
+        )
+
+    _guard(action)
+
+
+class Period(StrEnum):
+    pre = "pre"
+    experiment = "experiment"
+
+
+@app.command()
+def aa(
+    pipeline: PipelineArg,
+    replays: Annotated[int, typer.Option(min=2, help="Re-randomisations.")] = 1000,
+    period: Annotated[Period, typer.Option(help="Which days to replay.")] = Period.pre,
+    seed: Annotated[int, typer.Option(help="Salt of the re-randomisation hash.")] = 1,
+    as_json: Annotated[bool, typer.Option("--json", help="Print JSON instead.")] = False,
+    threads: Annotated[int | None, typer.Option(help="Engine threads (default: all).")] = None,
+) -> None:
+    """A/A replay: re-randomise units many times; is every metric's p-value calibrated?"""
+    from metricforge.checks import aa as replay
+    from metricforge.engines.duckdb import DuckDBEngine
+    from metricforge.report.replay import render_replay
+    from metricforge.spec import load_plan
+
+    def action() -> None:
+        plan = load_plan(pipeline)
+        report = replay.run_aa(
+            plan,
+            DuckDBEngine(threads=threads),
+            replays=replays,
+            period=replay.Period(period.value),
+            seed=seed,
+        )
+        if as_json:
+            sys.stdout.write(json.dumps(report.as_json(), indent=2) + "\n")
+        else:
+            render_replay(report, out_console)
 
     _guard(action)
 

@@ -46,10 +46,13 @@ class RunData:
     moments: dict[str, dict[str, Moments]] = field(default_factory=dict)  # metric -> variant
     # Extra sections for manifest.json (how inputs were hashed, what a rerun started from).
     provenance: dict[str, Any] = field(default_factory=dict)
+    tables: dict[str, pa.Table] = field(default_factory=dict)  # every result query's table
 
 
 def needed_event_columns(plan: Plan) -> tuple[str, ...]:
     cols = {"ts", "event", "session_id", plan.spec.unit}  # sessions are the first grouping
+    if plan.spec.stitch_to:
+        cols.add(plan.spec.stitch_to)
     for metric in plan.metrics:
         for tree in (metric.where, metric.value):
             if tree is not None:
@@ -83,7 +86,9 @@ def execute(plan: Plan, engine: Engine) -> RunData:
     engine_inputs, files = gather_inputs(plan)
     stamp = make_stamp(plan, fingerprint(files), engine.name, engine.version())
     tables = engine.run(compile_plan(plan, engine.dialect), engine_inputs)
-    return reshape(plan, stamp, files, tables["moments"])
+    data = reshape(plan, stamp, files, tables["moments"])
+    data.tables = tables
+    return data
 
 
 def reshape(plan: Plan, stamp: Stamp, files: list[InputFile], table: pa.Table) -> RunData:

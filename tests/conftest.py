@@ -98,3 +98,11 @@ def write_case(
     spec = folder / "spec.toml"
     spec.write_text(text, encoding="utf-8")
     return spec
+
+
+def successful_sessions(clicks: Any, backs: Any) -> list[bool]:
+    """Per session (lists of click and back times): a click with no back within 30 s."""
+    return [
+        any(not any(c < b <= c + dt.timedelta(seconds=30) for b in bs) for c in cs)
+        for cs, bs in zip(clicks, backs, strict=True)
+    ]

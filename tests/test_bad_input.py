@@ -123,6 +123,14 @@ def wrong_type(folder: Path) -> tuple[Path, list[str]]:
     return spec, ["events/part-0.parquet", "ts", "expected timestamp"]
 
 
+def unknown_two_variant_policy(folder: Path) -> tuple[Path, list[str]]:
+    spec = write_case(folder, *_good(folder))
+    spec.write_text(
+        spec.read_text().replace("alpha = 0.05", 'alpha = 0.05\ntwo_variant_units = "keep"')
+    )
+    return spec, ["spec.toml", "experiment.two_variant_units", "'exclude'", "first_exposure"]
+
+
 CASES: list[Callable[[Path], tuple[Path, list[str]]]] = [
     malformed_toml,
     unknown_metric,
@@ -135,6 +143,7 @@ CASES: list[Callable[[Path], tuple[Path, list[str]]]] = [
     one_variant_only,
     corrupt_parquet,
     wrong_type,
+    unknown_two_variant_policy,
 ]
 
 

@@ -16,7 +16,7 @@ import pytest
 from typer.testing import CliRunner
 
 from metricforge.cli import app
-from tests.conftest import DEMO_EXPERIMENTS, PIPELINES, SAMPLE
+from tests.conftest import DEMO_EXPERIMENTS, PIPELINES, SAMPLE, successful_sessions
 
 START, END, WINDOW = dt.datetime(2026, 9, 15), dt.datetime(2026, 9, 29), dt.timedelta(days=14)
 UA_TOKENS = ("bot", "crawler", "spider", "headless")  # bots@2 rule 1
@@ -83,10 +83,7 @@ def reference(events: pl.DataFrame, experiment: str) -> dict[str, dict[str, tupl
             pl.col("ts").filter(is_("back")).alias("backs"),
         )
     )
-    good = [
-        any(not any(c < b <= c + dt.timedelta(seconds=30) for b in backs) for c in clicks)
-        for clicks, backs in zip(sessions["clicks"], sessions["backs"], strict=True)
-    ]
+    good = successful_sessions(sessions["clicks"], sessions["backs"])
     sessions = sessions.with_columns(pl.Series("good", good, dtype=pl.Float64))
     sess = sessions.group_by("cookie_id").agg(pl.col("good").sum(), pl.len().alias("n_sess"))
     table = table.join(sess, left_on="unit_id", right_on="cookie_id", how="left").with_columns(

@@ -24,8 +24,10 @@ from dataclasses import dataclass
 
 import sqlglot.expressions as exp
 
+from metricforge.compile.checks import check_results
 from metricforge.compile.expressions import qualify
-from metricforge.spec.model import BotRule, Kind, MetricDef, Plan, RuleKind
+from metricforge.compile.stitch import stitch_stages
+from metricforge.spec.model import BotRule, Kind, MetricDef, Plan, RuleKind, TwoVariantPolicy
 
 UNIT_TABLE = "unit_rows"
 EXACT = exp.DataType.build("DECIMAL(38, 10)")
@@ -119,16 +121,26 @@ class _Builder:
     # -- stage 1 -------------------------------------------------------------------------
     def first_exposure(self) -> exp.Select:
         x = "x"
-        return (
-            exp.select(
-                exp.alias_(_col("unit_id", x), "unit"),
-                exp.alias_(exp.Min(this=_col("ts", x)), "first_ts"),
-                exp.alias_(exp.Min(this=_col("variant", x)), "variant"),
-                exp.alias_(
-                    exp.Count(this=exp.Distinct(expressions=[_col("variant", x)])), "n_variants"
-                ),
+        ts, variant = _col("ts", x), _col("variant", x)
+        # Each planned variant's first exposure time; the unit's variant is the one it saw
+        # first (ties in the spec's order, control first), so a unit seen in two variants is
+        # attributed to one of them the same way on every run.
+        firsts = [exp.Min(this=_case(variant.eq(_lit(v)), ts)) for v in self.spec.variant_names]
+        chosen = exp.Case()
+        for name, first in zip(self.spec.variant_names, firsts, strict=True):
+            chosen = chosen.when(first.copy().eq(exp.Min(this=ts.copy())), _lit(name))
+        select = exp.select(
+            exp.alias_(_col("unit_id", x), "unit"),
+            exp.alias_(exp.Min(this=ts.copy()), "first_ts"),
+            exp.alias_(chosen.else_(exp.Min(this=variant.copy())), "variant"),
+            exp.alias_(exp.Count(this=exp.Distinct(expressions=[variant.copy()])), "n_variants"),
+        )
+        if self.spec.stitch_to:
+            select = select.select(
+                *[exp.alias_(f, f"first_ts_{i}") for i, f in enumerate(firsts)], copy=False
             )
-            .from_(exp.alias_(exp.to_table("exposures"), x, table=True))
+        return (
+            select.from_(exp.alias_(exp.to_table("exposures"), x, table=True))
             .where(
                 _and(
                     _col("experiment", x).eq(_lit(self.spec.name)),
@@ -172,9 +184,18 @@ class _Builder:
             _col("unit", f),
             _col("variant", f),
             _col("n_variants", f),
+            _col("first_ts", f),
             exp.alias_(_col("session_id", e), "session"),
             exp.alias_(n_events, "n_events"),
         )
+        if self.spec.stitch_to:  # the stitch ids seen in the experiment window
+            ident: exp.Expr = _col(self.spec.stitch_to, e)
+            if in_window is not None:
+                ident = _case(in_window.copy(), ident)
+            select = select.select(
+                exp.alias_(exp.Min(this=ident), "id_min"),
+                exp.alias_(exp.Max(this=ident.copy()), "id_max"),
+            )
         for period, cond in periods:
             select = select.select(
                 exp.alias_(exp.Count(this=_case(cond.copy(), _lit(1))), f"n_{period}_events")
@@ -190,10 +211,7 @@ class _Builder:
             select = select.select(*self._session_parts(metric, e, "", in_window))
             for period, cond in periods:
                 select = select.select(*self._session_parts(metric, e, period, cond))
-        keys = [_col("unit", f), _col("variant", f), _col("n_variants", f)]
-        if self.plan.history_split:
-            select = select.select(_col("first_ts", f))
-            keys.append(_col("first_ts", f))
+        keys = [_col("unit", f), _col("variant", f), _col("n_variants", f), _col("first_ts", f)]
         return (
             select.from_(exp.alias_(exp.to_table("first_exposure"), f, table=True))
             .join(exp.alias_(exp.to_table("events"), e, table=True), on=join_on, join_type="left")
@@ -296,6 +314,7 @@ class _Builder:
             _col("unit"),
             _col("variant"),
             _col("n_variants"),
+            _col("first_ts"),
             exp.alias_(exp.cast(exp.Sum(this=_col("n_events")), BIGINT), "n_events"),
             exp.alias_(exp.Max(this=_col("n_events")), "max_session_events"),
             exp.alias_(exp.Count(this=_col("session")), "n_sessions"),
@@ -305,6 +324,11 @@ class _Builder:
         for period in periods:
             total = exp.cast(exp.Sum(this=_col(f"n_{period}_events")), BIGINT)
             select = select.select(exp.alias_(total, f"n_{period}_events"))
+        if self.spec.stitch_to:
+            select = select.select(
+                exp.alias_(exp.Min(this=_col("id_min")), "id_min"),
+                exp.alias_(exp.Max(this=_col("id_max")), "id_max"),
+            )
         for i, rule in enumerate(self.plan.bot_filter.rules):
             if rule.kind in (RuleKind.USER_AGENT, RuleKind.DENY_IP):
                 select = select.select(
@@ -314,10 +338,7 @@ class _Builder:
             select = select.select(*self._unit_parts(metric, "", "n_events" if pre else None))
             for period in periods:
                 select = select.select(*self._unit_parts(metric, period, f"n_{period}_events"))
-        keys = [_col("unit"), _col("variant"), _col("n_variants")]
-        if self.plan.history_split:
-            select = select.select(_col("first_ts"))
-            keys.append(_col("first_ts"))
+        keys = [_col("unit"), _col("variant"), _col("n_variants"), _col("first_ts")]
         return select.from_("sessions").group_by(*keys)
 
     def _unit_parts(self, metric: MetricDef, period: str, active: str | None) -> list[exp.Expr]:
@@ -336,7 +357,14 @@ class _Builder:
             mean = exp.Div(
                 this=exp.cast(exp.Sum(this=s), DOUBLE), expression=exp.cast(count, DOUBLE)
             )
-            return [exp.alias_(_case(count > _lit(0), mean), u)]
+            parts: list[exp.Expr] = [exp.alias_(_case(count > _lit(0), mean), u)]
+            if self.spec.stitch_to:  # merged units need the sum and the count
+                total_value = exp.cast(exp.Sum(this=s.copy()), DOUBLE)
+                parts += [
+                    exp.alias_(total_value, f"sv{period}_{metric.name}"),
+                    exp.alias_(count.copy(), f"c{period}_{metric.name}"),
+                ]
+            return parts
         if metric.kind is Kind.DWELL_SUCCESS:
             session: exp.Expr = _col("session")
             if active is not None:
@@ -380,22 +408,31 @@ class _Builder:
         return self._per_unit(metric.name, period), None
 
     def classified(self) -> exp.Select:
+        stitched = bool(self.spec.stitch_to)
         flags: list[exp.Expr] = []
         for i, rule in enumerate(self.plan.bot_filter.rules):
             if rule.kind in (RuleKind.USER_AGENT, RuleKind.DENY_IP):
                 flags.append(_col(f"bot_rule_{i}").eq(_lit(1)))
             elif rule.kind is RuleKind.SESSION_EVENTS:
                 flags.append(_col("max_session_events") > _lit(rule.max_events))
+            elif rule.kind is RuleKind.DENY_UNIT and stitched:  # decided per cookie, merged
+                flags.append(_col(f"bot_rule_{i}").eq(_lit(1)))
             elif rule.kind is RuleKind.DENY_UNIT:
                 flags.append(_col("unit").isin(*[_lit(t) for t in rule.tokens]))
         is_bot = exp.paren(exp.or_(*flags)) if flags else exp.false()
+        two_variants = _col("n_variants") > _lit(1)
+        excluded = two_variants if self.spec.two_variant_units is TwoVariantPolicy.EXCLUDE else None
         select = exp.select(
             _col("unit"),
             _col("variant"),
             _col("n_events"),
             exp.alias_(is_bot, "is_bot"),
-            exp.alias_(_col("n_variants") > _lit(1), "contaminated"),
+            exp.alias_(excluded.copy() if excluded is not None else exp.false(), "contaminated"),
+            exp.alias_(two_variants, "two_variants"),
+            _col("first_ts"),
         )
+        if stitched:
+            select = select.select(_col("identity"), _col("n_cookies"))
         periods = ["", *(p for p, _ in self._periods("e", "f"))]
         if self.plan.pre_period_days:
             select = select.select(exp.alias_(_col("n_pre_events") > _lit(0), "has_pre"))
@@ -412,7 +449,7 @@ class _Builder:
                 select = select.select(exp.alias_(x, f"x{period}_{metric.name}"))
                 if y is not None:
                     select = select.select(exp.alias_(y, f"y{period}_{metric.name}"))
-        return select.from_("units")
+        return select.from_("stitched" if stitched else "units")
 
     # -- stage 5 -------------------------------------------------------------------------
     def _agg(self, cls: type[exp.Func], col: str, other: str | None = None) -> exp.Expr:
@@ -455,16 +492,21 @@ class _Builder:
 
     def unit_rows(self) -> exp.Select:
         query = self.classified()
-        for name, cte in (
+        stages = [
             ("first_exposure", self.first_exposure()),
             ("sessions", self.sessions()),
             ("units", self.units()),
-        ):
+        ]
+        if self.spec.stitch_to:
+            periods = [p for p, _ in self._periods("e", "f")]
+            stages += stitch_stages(self.plan, self.ordered, periods)
+        for name, cte in stages:
             query = query.with_(name, as_=cte)
         return query
 
     def build(self) -> CompiledRun:
-        return CompiledRun(unit_rows=self.unit_rows(), results=(("moments", self.moments()),))
+        results = (("moments", self.moments()), *check_results(self.plan, self.ordered))
+        return CompiledRun(unit_rows=self.unit_rows(), results=results)
 
 
 @dataclass(frozen=True)

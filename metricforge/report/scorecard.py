@@ -10,12 +10,15 @@ from typing import Any
 
 import pyarrow as pa
 
+from metricforge.checks import trust_section
+from metricforge.checks.bots import event_shares
+from metricforge.checks.contamination import two_variant_counts
+from metricforge.checks.identity import identity_section
 from metricforge.errors import StatsError
 from metricforge.report.inference import TWO_SIDED, adjust, factorial_rows, hypothesis
 from metricforge.runner import RunData
 from metricforge.spec.model import MetricDef, Role
-from metricforge.stats import Effect, compare, ratio_point_and_variance, srm_test
-from metricforge.stats.independence import share_differs
+from metricforge.stats import Effect, compare, ratio_point_and_variance
 
 SCORECARD_SCHEMA = pa.schema(
     [
@@ -74,6 +77,7 @@ class Scorecard:
     trust: dict[str, Any]
     variants: list[dict[str, Any]]
     stamp: dict[str, Any]
+    identity: dict[str, Any] | None = None  # what identity stitching merged, if it ran
 
     def table(self) -> pa.Table:
         return pa.Table.from_pylist(self.rows, schema=SCORECARD_SCHEMA)
@@ -83,6 +87,7 @@ class Scorecard:
             "trust": self.trust,
             "experiment": self.stamp["experiment"],
             "stamp": self.stamp,
+            **({"identity": self.identity} if self.identity is not None else {}),
             "variants": self.variants,
             "metrics": [_clean(r) for r in self.rows],
         }
@@ -177,12 +182,18 @@ def build(data: RunData) -> Scorecard:
         rows += factorial_rows(data, name, base)
     adjust(rows)
     return Scorecard(
-        rows=rows, trust=trust_section(data), variants=variant_section(data), stamp=stamp
+        rows=rows,
+        trust=trust_section(data),
+        variants=variant_section(data),
+        stamp=stamp,
+        identity=identity_section(data),
     )
 
 
 def variant_section(data: RunData) -> list[dict[str, Any]]:
     out = []
+    event_share, _ = event_shares(data)
+    two, _ = two_variant_counts(data)
     for variant, c in data.counts.items():
         out.append(
             {
@@ -194,46 +205,9 @@ def variant_section(data: RunData) -> list[dict[str, Any]]:
                 "bot_events": c.bot_events,
                 "bot_unit_share": c.bot_units / c.exposed if c.exposed else None,
                 "contaminated_units": c.contaminated_units,
+                "exposed_units": c.exposed,
+                "bot_event_share": event_share[variant],
+                "seen_in_two_variants": two[variant],
             }
         )
     return out
-
-
-def trust_section(data: RunData) -> dict[str, Any]:
-    spec = data.plan.spec
-    names = spec.variant_names
-    # Sample ratio on every exposed unit: the assignment itself, before any filtering.
-    # An imbalance that the bot filter creates is the next check's job.
-    exposed = [data.counts[v].exposed for v in names]
-    srm = srm_test(exposed, [s for _, s in spec.variants])
-    checks = [
-        {
-            "check": "sample_ratio_mismatch",
-            "figure": f"chi2={srm.chi2:.4g}, df={srm.df}, p={srm.p_value:.4g}",
-            "p_value": srm.p_value,
-            "threshold": spec.srm_alpha,
-            "observed": dict(zip(names, exposed, strict=True)),
-            "expected": dict(
-                zip(spec.variant_names, [round(e, 6) for e in srm.expected], strict=True)
-            ),
-            "passed": bool(srm.p_value >= spec.srm_alpha),
-        }
-    ]
-    bots = [data.counts[v].bot_units for v in names]
-    shares = [f"{v} {b / e:.2%}" for v, b, e in zip(names, bots, exposed, strict=True) if e]
-    bot_test = share_differs(bots, exposed)
-    checks.append(
-        {
-            "check": "bot_share_by_variant",
-            "figure": ", ".join(shares) + f"; chi2={bot_test.chi2:.4g}, p={bot_test.p_value:.4g}",
-            "p_value": bot_test.p_value,
-            "threshold": spec.srm_alpha,
-            "bot_units": dict(zip(names, bots, strict=True)),
-            "exposed_units": dict(zip(names, exposed, strict=True)),
-            "passed": bool(bot_test.p_value >= spec.srm_alpha),
-        }
-    )
-    return {
-        "verdict": "pass" if all(c["passed"] for c in checks) else "fail",
-        "checks": checks,
-    }

@@ -8,6 +8,7 @@ from typing import Any
 from rich.console import Console
 from rich.table import Table
 
+from metricforge.checks.identity import describe as describe_identity
 from metricforge.report.scorecard import Scorecard
 
 
@@ -40,10 +41,15 @@ def render(card: Scorecard, console: Console) -> None:
     trust = card.trust
     verdict = trust["verdict"].upper()
     style = "bold green" if trust["verdict"] == "pass" else "bold red"
-    console.print(f"[{style}]trust: {verdict}[/]  experiment {card.stamp['experiment']}")
+    warned = trust.get("warnings", 0)
+    note = f" ({warned} warning{'s' * (warned != 1)})" if warned else ""
+    console.print(f"[{style}]trust: {verdict}[/]{note}  experiment {card.stamp['experiment']}")
+    marks = {"pass": "ok  ", "fail": "[bold red]FAIL[/]", "warn": "[yellow]warn[/]"}
     for check in trust["checks"]:
-        mark = "ok  " if check["passed"] else "FAIL"
-        console.print(f"  {mark} {check['check']}: {check['figure']}")
+        console.print(f"  {marks[check.get('status', 'pass')]} {check['check']}: ", end="")
+        console.print(check["figure"], markup=False)
+    if card.identity is not None:
+        console.print("  " + describe_identity(card.identity), markup=False)
     for v in card.variants:
         console.print(
             f"  {v['variant']}: {v['units']} units analysed, {v['bot_units']} bot units removed,"

@@ -10,7 +10,7 @@ from metricforge.errors import SpecError, closest
 from metricforge.schema import EVENT_COLUMNS
 from metricforge.spec.filters import load_filter
 from metricforge.spec.metrics import load_library
-from metricforge.spec.model import ExperimentSpec, Factor, MetricDef, Plan
+from metricforge.spec.model import ExperimentSpec, Factor, MetricDef, Plan, TwoVariantPolicy
 from metricforge.spec.tomlfile import Section, TomlFile, read_toml
 
 
@@ -46,6 +46,9 @@ def load_spec(path: Path) -> ExperimentSpec:
             "alpha",
             "srm_alpha",
             "bot_filter",
+            "stitch_to",
+            "two_variant_units",
+            "max_two_variant_share",
         }
     )
     data = top.sub("data")
@@ -54,8 +57,8 @@ def load_spec(path: Path) -> ExperimentSpec:
     met.check_keys({"decision", "guardrails", "diagnostics", "guardrail_margins"})
 
     unit = ex.req_str("unit")
+    ids = [c for c, t in EVENT_COLUMNS.items() if t == "string" and c.endswith("_id")]
     if unit not in EVENT_COLUMNS or EVENT_COLUMNS[unit] != "string":
-        ids = [c for c, t in EVENT_COLUMNS.items() if t == "string" and c.endswith("_id")]
         raise ex.error(
             f"unit must be an id column of the events, one of {ids}",
             "unit",
@@ -94,6 +97,20 @@ def load_spec(path: Path) -> ExperimentSpec:
     for key, value in (("alpha", alpha), ("srm_alpha", srm_alpha)):
         if not 0 < value < 0.5:
             raise ex.error(f"{key} must be between 0 and 0.5", key)
+    stitch_to = ex.text("stitch_to", None)
+    if stitch_to is not None and (stitch_to not in ids or stitch_to in (unit, "session_id")):
+        choices = [c for c in ids if c not in (unit, "session_id")]
+        raise ex.error(
+            f"stitch_to must be another id column of the events, one of {choices}",
+            "stitch_to",
+            suggestion=closest(stitch_to, choices),
+        )
+    two_variant = ex.choice(
+        "two_variant_units", TwoVariantPolicy, "two_variant_units policy", default="exclude"
+    )
+    max_two_variant = ex.number("max_two_variant_share", 0.05)
+    if not 0 <= max_two_variant <= 1:
+        raise ex.error("max_two_variant_share must be between 0 and 1", "max_two_variant_share")
     base = path.parent
 
     decision = met.req_str("decision")
@@ -121,6 +138,9 @@ def load_spec(path: Path) -> ExperimentSpec:
         pre_period_days=pre_days,
         alpha=alpha,
         srm_alpha=srm_alpha,
+        stitch_to=stitch_to,
+        two_variant_units=two_variant,
+        max_two_variant_share=max_two_variant,
         bot_filter_ref=ex.req_str("bot_filter"),
         events_path=base / data.req_str("events"),
         exposures_path=base / data.req_str("exposures"),

@@ -30,6 +30,13 @@ class Direction(StrEnum):
     LOWER = "lower"
 
 
+class TwoVariantPolicy(StrEnum):
+    """What happens to a unit exposed to more than one variant."""
+
+    EXCLUDE = "exclude"  # counted, then left out of the analysis (the default)
+    FIRST_EXPOSURE = "first_exposure"  # analysed in the variant of its first exposure
+
+
 class Role(StrEnum):
     DECISION = "decision"
     GUARDRAIL = "guardrail"
@@ -143,6 +150,11 @@ class ExperimentSpec:
     # relative non-inferiority margin per guardrail ([metrics] guardrail_margins)
     guardrail_margins: tuple[tuple[str, float], ...] = ()
     factors: tuple[Factor, ...] = ()  # [factors]: a full 2^k factorial design, or none
+    # Identity stitching: an id column of the events (e.g. account_id); cookies whose events
+    # carry exactly one such id are merged into one unit per id before analysis.
+    stitch_to: str | None = None
+    two_variant_units: TwoVariantPolicy = TwoVariantPolicy.EXCLUDE
+    max_two_variant_share: float = 0.05  # trust check: share of exposed units in 2+ variants
 
     @property
     def variant_names(self) -> tuple[str, ...]:

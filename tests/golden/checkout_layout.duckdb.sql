@@ -4,7 +4,13 @@ WITH first_exposure AS (
   SELECT
     x.unit_id AS unit,
     MIN(x.ts) AS first_ts,
-    MIN(x.variant) AS variant,
+    CASE
+      WHEN MIN(CASE WHEN x.variant = 'control' THEN x.ts END) = MIN(x.ts)
+      THEN 'control'
+      WHEN MIN(CASE WHEN x.variant = 'treatment' THEN x.ts END) = MIN(x.ts)
+      THEN 'treatment'
+      ELSE MIN(x.variant)
+    END AS variant,
     COUNT(DISTINCT x.variant) AS n_variants
   FROM exposures AS x
   WHERE
@@ -20,6 +26,7 @@ WITH first_exposure AS (
     f.unit,
     f.variant,
     f.n_variants,
+    f.first_ts,
     e.session_id AS session,
     COUNT(e.ts) AS n_events,
     MAX(
@@ -82,12 +89,14 @@ WITH first_exposure AS (
     f.unit,
     f.variant,
     f.n_variants,
+    f.first_ts,
     e.session_id
 ), units AS (
   SELECT
     unit,
     variant,
     n_variants,
+    first_ts,
     CAST(SUM(n_events) AS BIGINT) AS n_events,
     MAX(n_events) AS max_session_events,
     COUNT(session) AS n_sessions,
@@ -110,7 +119,8 @@ WITH first_exposure AS (
   GROUP BY
     unit,
     variant,
-    n_variants
+    n_variants,
+    first_ts
 )
 SELECT
   unit,
@@ -120,6 +130,8 @@ SELECT
     bot_rule_0 = 1 OR max_session_events > 60
   ) AS is_bot,
   n_variants > 1 AS contaminated,
+  n_variants > 1 AS two_variants,
+  first_ts,
   CAST(u_revenue AS DOUBLE) AS x_revenue,
   CAST(u_unsubscribes AS DOUBLE) AS x_unsubscribes,
   CAST(u_page_latency AS DOUBLE) AS x_page_latency,
@@ -191,3 +203,35 @@ ORDER BY
   variant,
   is_bot,
   contaminated;
+
+-- exposure_days
+SELECT
+  variant,
+  CAST(first_ts AS DATE) AS first_day,
+  COUNT(*) AS n_units,
+  CAST(SUM(CASE WHEN two_variants THEN 1 ELSE 0 END) AS BIGINT) AS n_two
+FROM unit_rows
+GROUP BY
+  variant,
+  CAST(first_ts AS DATE)
+ORDER BY
+  variant,
+  CAST(first_ts AS DATE);
+
+-- bot_events
+SELECT
+  variant,
+  COUNT(*) AS n_units,
+  AVG(CAST(CASE WHEN is_bot THEN n_events ELSE 0 END AS DOUBLE) ORDER BY unit) AS mean_removed,
+  AVG(CAST(n_events AS DOUBLE) ORDER BY unit) AS mean_events,
+  VARIANCE(CAST(CASE WHEN is_bot THEN n_events ELSE 0 END AS DOUBLE) ORDER BY unit) AS var_removed,
+  VARIANCE(CAST(n_events AS DOUBLE) ORDER BY unit) AS var_events,
+  COVAR_SAMP(
+    CAST(CASE WHEN is_bot THEN n_events ELSE 0 END AS DOUBLE),
+    CAST(n_events AS DOUBLE) ORDER BY unit
+  ) AS cov_removed_events
+FROM unit_rows
+GROUP BY
+  variant
+ORDER BY
+  variant;

@@ -1,0 +1,41 @@
+"""The terminal view of an A/A replay (rich)."""
+
+from __future__ import annotations
+
+from rich.console import Console
+from rich.table import Table
+
+from metricforge.checks.aa import Period, ReplayReport
+
+
+def render_replay(report: ReplayReport, console: Console) -> None:
+    period = (
+        f"the pre-period ({report.period_days} days before each unit's first exposure)"
+        if report.period is Period.PRE
+        else f"the experiment period ({report.period_days}-day windows)"
+    )
+    console.print(
+        f"A/A replay of {report.experiment}: {report.replays} re-randomisations of"
+        f" {report.units} analysed units in {report.buckets} hash buckets, on {period};"
+        f" alpha {report.alpha:g}, seed {report.seed}",
+        markup=False,
+    )
+    table = Table()
+    for col in ("metric", "role", "variant", "p < alpha", "99% interval", "KS D", "KS p"):
+        table.add_column(col, justify="left" if col in ("metric", "role") else "right")
+    table.add_column("verdict")
+    for r in report.rows:
+        verdict = r["verdict"] + ("" if r["uniform"] else "; p-values not uniform")
+        style = None if r["verdict"] == "calibrated" else "bold red"
+        table.add_row(
+            r["metric"],
+            r["role"],
+            r["variant"],
+            f"{r['share']:.3f}",
+            f"{r['ci_low']:.3f}–{r['ci_high']:.3f}",
+            f"{r['ks_statistic']:.3f}",
+            f"{r['ks_p_value']:.3g}",
+            verdict,
+            style=style,
+        )
+    console.print(table)
