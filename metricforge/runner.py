@@ -8,6 +8,7 @@ from pathlib import Path
 
 import pyarrow as pa
 
+from metricforge.adjustments import Extras, read_extras
 from metricforge.compile.expressions import columns_of
 from metricforge.compile.query import compile_plan, result_columns
 from metricforge.engines.base import Engine, EngineInputs
@@ -43,6 +44,7 @@ class RunData:
     inputs: list[InputFile]
     counts: dict[str, VariantCounts]
     moments: dict[str, dict[str, Moments]] = field(default_factory=dict)  # metric -> variant
+    extras: Extras = field(default_factory=Extras)  # caps, CUPED moments, quantile summaries
 
 
 def needed_event_columns(plan: Plan) -> tuple[str, ...]:
@@ -80,7 +82,9 @@ def execute(plan: Plan, engine: Engine) -> RunData:
     engine_inputs, files = gather_inputs(plan)
     stamp = make_stamp(plan, fingerprint(files), engine.name, engine.version())
     tables = engine.run(compile_plan(plan, engine.dialect), engine_inputs)
-    return reshape(plan, stamp, files, tables["moments"])
+    data = reshape(plan, stamp, files, tables["moments"])
+    data.extras = read_extras(plan, tables)
+    return data
 
 
 def reshape(plan: Plan, stamp: Stamp, files: list[InputFile], table: pa.Table) -> RunData:

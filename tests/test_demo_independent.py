@@ -21,6 +21,8 @@ from tests.conftest import DEMO_EXPERIMENTS, PIPELINES, SAMPLE
 START, END, WINDOW = dt.datetime(2026, 9, 15), dt.datetime(2026, 9, 29), dt.timedelta(days=14)
 UA_TOKENS = ("bot", "crawler", "spider", "headless")  # bots@2 rule 1
 SESSION_LIMIT = 60  # bots@2 rule 2
+REVENUE_CAP_LEVEL = 0.999  # metric_defs: revenue winsorise
+P95 = 0.95  # metric_defs: page_latency_p95 q
 
 
 @pytest.fixture(scope="module")
@@ -74,6 +76,10 @@ def reference(events: pl.DataFrame, experiment: str) -> dict[str, dict[str, tupl
         (pl.col("purchases") > 0).cast(pl.Float64).alias("buyer_share"),
         (pl.col("revenue") - 25.0 * pl.col("unsubscribes")).alias("net_value"),
     )
+    # revenue is winsorised at its 0.999 quantile (linear interpolation) over the pooled
+    # per-unit values of all analysed units; the composite uses the uncapped value
+    cap = float(table["revenue"].cast(pl.Float64).quantile(REVENUE_CAP_LEVEL, "linear"))  # type: ignore[arg-type]
+    table = table.with_columns(pl.col("revenue").cast(pl.Float64).clip(upper_bound=cap))
     # dwell success per session: a click with no back within (t, t + 30 s]
     sessions = (
         ev.filter(pl.col("session_id").is_not_null())
@@ -97,7 +103,17 @@ def reference(events: pl.DataFrame, experiment: str) -> dict[str, dict[str, tupl
         .group_by("cookie_id")
         .agg(pl.col("latency_ms").mean().alias("lat"))
     )
-    out: dict[str, dict[str, tuple[float, int]]] = {}
+    out: dict[str, dict[str, tuple[float, int]]] = {"revenue_cap": {"all": (cap, table.height)}}
+    # p95 of the event-level latencies of each variant's analysed units (linear rule)
+    loads = ev.filter(is_("page_load") & pl.col("latency_ms").is_not_null()).join(
+        units.select("unit_id", "variant"), left_on="cookie_id", right_on="unit_id"
+    )
+    for variant, frame in loads.group_by("variant"):
+        p95 = float(frame["latency_ms"].quantile(P95, "linear"))  # type: ignore[arg-type]
+        out.setdefault("page_latency_p95", {})[str(variant[0])] = (
+            p95,
+            frame["cookie_id"].n_unique(),
+        )
     for variant, frame in table.group_by("variant"):
         v = str(variant[0])
         n = frame.height
@@ -132,13 +148,17 @@ def test_every_value_matches_independent_computation(
 ) -> None:
     expected = reference(events, experiment)
     rows = json.loads((scorecards[experiment] / "scorecard.json").read_text())["metrics"]
-    assert {r["metric"] for r in rows} == set(expected) - {"impressions", "clicks"}
+    assert {r["metric"] for r in rows} == set(expected) - {"impressions", "clicks", "revenue_cap"}
     for row in rows:
         ref = expected[row["metric"]]
         assert row["value"] == pytest.approx(ref["treatment"][0], rel=1e-9), row["metric"]
         assert row["control_value"] == pytest.approx(ref["control"][0], rel=1e-9), row["metric"]
         assert row["n_units"] == ref["treatment"][1], row["metric"]
         assert row["n_units_control"] == ref["control"][1], row["metric"]
+        if row["metric"] == "revenue":
+            assert row["cap"] == pytest.approx(expected["revenue_cap"]["all"][0], rel=1e-12)
+        else:
+            assert row["cap"] is None, row["metric"]
 
 
 def test_true_effect_inside_decision_ci(scorecards: dict[str, Path]) -> None:

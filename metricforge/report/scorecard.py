@@ -10,6 +10,7 @@ from typing import Any
 import pyarrow as pa
 
 from metricforge.errors import StatsError
+from metricforge.report.adjusted import adjusted_effect, extra_columns
 from metricforge.runner import RunData
 from metricforge.stats import Effect, compare, ratio_point_and_variance, srm_test
 from metricforge.stats.independence import share_differs
@@ -36,6 +37,8 @@ SCORECARD_SCHEMA = pa.schema(
         ("p_value", pa.float64()),
         ("alpha", pa.float64()),
         ("method", pa.string()),
+        ("variance_reduction", pa.float64()),  # CUPED: 1 - adjusted / unadjusted variance
+        ("cap", pa.float64()),  # winsorising: the cap of the per-unit value
         ("unit_label", pa.string()),
         ("bot_filter", pa.string()),
         ("bot_filter_version", pa.int64()),
@@ -90,7 +93,9 @@ def _effect_fields(data: RunData, metric: str, variant: str) -> tuple[dict[str, 
     moments = data.moments[metric]
     control = data.plan.spec.control
     try:
-        effect: Effect = compare(moments[variant], moments[control], alpha=data.plan.spec.alpha)
+        effect: Effect = adjusted_effect(data, metric, variant) or compare(
+            moments[variant], moments[control], alpha=data.plan.spec.alpha
+        )
     except StatsError as err:
         fields: dict[str, Any] = {f: float("nan") for f in _EFFECT_FIELDS}
         for name, v in (("value", variant), ("control_value", control)):
@@ -134,6 +139,7 @@ def build(data: RunData) -> Scorecard:
                     **fields,
                     "alpha": spec.alpha,
                     "method": method,
+                    **extra_columns(data, name, variant),
                     "unit_label": metric.unit_label,
                     **row_stamp,
                 }

@@ -18,6 +18,7 @@ class Kind(StrEnum):
     RATIO = "ratio"
     DWELL_SUCCESS = "dwell_success"
     COMPOSITE = "composite"
+    QUANTILE = "quantile"  # a quantile of the event-level values, e.g. p95 page latency
 
 
 # Kinds whose per-unit value is a plain number (denominator 1 per unit), so they
@@ -58,6 +59,9 @@ class MetricDef:
     denominator: str | None = None
     terms: tuple[tuple[str, float], ...] = ()  # composite: (metric, weight)
     threshold_s: float = 30.0  # dwell_success
+    q: float = 0.5  # quantile: the level, e.g. 0.95
+    winsorise: float | None = None  # cap the per-unit value (a ratio's numerator) at this
+    # quantile of the pooled per-unit distribution of all analysed units
     direction: Direction = Direction.HIGHER
     unit_label: str = ""
     description: str = ""
@@ -128,6 +132,7 @@ class ExperimentSpec:
     srm_alpha: float = 0.001
     description: str = ""
     pre_period_days: int = 0  # days before each unit's first exposure to read (0: none)
+    cuped: bool = False  # adjust each metric by its own pre-period value (needs pre_period_days)
 
     @property
     def variant_names(self) -> tuple[str, ...]:

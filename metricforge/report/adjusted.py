@@ -1,0 +1,85 @@
+"""Scorecard effects that do not come from plain moments: quantile metrics (outer CI) and
+CUPED-adjusted metrics, and the extra columns `variance_reduction` and `cap`."""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from typing import Any
+
+from metricforge.errors import StatsError
+from metricforge.runner import RunData
+from metricforge.spec.model import Kind
+from metricforge.stats import Effect, compare
+from metricforge.stats.cuped import CupedEffect, cuped_compare
+from metricforge.stats.quantiles import quantile_compare
+
+EXTRA_COLUMNS = ("variance_reduction", "cap")
+_NAN_FIELDS = (
+    "abs_effect",
+    "abs_ci_low",
+    "abs_ci_high",
+    "rel_effect",
+    "rel_ci_low",
+    "rel_ci_high",
+    "p_value",
+)
+
+
+def _cuped(data: RunData, metric: str, variant: str) -> CupedEffect | None:
+    arms = data.extras.cuped.get(metric)
+    if arms is None:
+        return None
+    return cuped_compare(arms, variant, data.plan.spec.control, alpha=data.plan.spec.alpha)
+
+
+def adjusted_effect(data: RunData, metric: str, variant: str) -> Effect | None:
+    """The effect of a quantile or CUPED-adjusted metric; None for every other metric.
+
+    CUPED that cannot be applied (e.g. a compared variant without any pre-period data)
+    falls back to the unadjusted effect and says why in `method`.
+    """
+    control, alpha = data.plan.spec.control, data.plan.spec.alpha
+    definition = data.plan.metric(metric)
+    if definition.kind is Kind.QUANTILE:
+        summaries = data.extras.quantiles[metric]
+        t, c = summaries.get(variant), summaries.get(control)
+        try:
+            if t is None or c is None:
+                raise StatsError("a variant has no values of this quantile metric")
+            return quantile_compare(t, c, q=definition.q, alpha=alpha)
+        except StatsError as err:  # the quantiles themselves are still worth showing
+            nan = math.nan
+            return Effect(
+                value=t.quantile if t is not None else nan,
+                control_value=c.quantile if c is not None else nan,
+                **dict.fromkeys(_NAN_FIELDS, nan),
+                method=f"not computed: {err.message}",
+            )
+    if metric not in data.extras.cuped:
+        return None
+    try:
+        result = _cuped(data, metric, variant)
+    except StatsError as err:
+        moments = data.moments[metric]
+        plain = compare(moments[variant], moments[control], alpha=alpha)
+        return dataclasses.replace(
+            plain, method=f"{plain.method} (cuped not applied: {err.message})"
+        )
+    assert result is not None
+    return result.effect
+
+
+def extra_columns(data: RunData, metric: str, variant: str) -> dict[str, Any]:
+    """`variance_reduction` (CUPED: 1 − adjusted/unadjusted variance of the effect) and
+    `cap` (winsorising: the cap of the per-unit value); None where they do not apply."""
+    reduction: float | None = None
+    try:
+        result = _cuped(data, metric, variant)
+        reduction = result.variance_reduction if result is not None else None
+    except StatsError:
+        reduction = None
+    cap = data.extras.caps.get(metric)
+    if cap is not None and not math.isfinite(cap):
+        cap = None
+    return {"variance_reduction": reduction, "cap": cap}
