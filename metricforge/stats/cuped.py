@@ -69,48 +69,52 @@ def _index(names: tuple[str, ...], name: str) -> np.ndarray:
     return e
 
 
-def _outcome(arm: UnitVectors, ratio: bool) -> tuple[float, np.ndarray]:
-    """The arm's metric value and the weights of its (linearised) per-unit outcome."""
-    mean, _ = arm.arrays()
-    x = _index(arm.names, "x")
+def _outcome(names: tuple[str, ...], mean: np.ndarray, ratio: bool) -> tuple[float, np.ndarray]:
+    """A variant's metric value and the weights of its (linearised) per-unit outcome."""
+    x = _index(names, "x")
     if not ratio:
-        return float(mean[arm.names.index("x")]), x
-    mean_x, mean_y = mean[arm.names.index("x")], mean[arm.names.index("y")]
+        return float(mean[names.index("x")]), x
+    mean_x, mean_y = mean[names.index("x")], mean[names.index("y")]
     if mean_y == 0:
         raise StatsError("the denominator's mean is zero for this variant")
     r = mean_x / mean_y
-    return float(r), (x - r * _index(arm.names, "y")) / mean_y
+    return float(r), (x - r * _index(names, "y")) / mean_y
 
 
-def _covariates(arms: Mapping[str, UnitVectors], ratio: bool) -> np.ndarray:
+def _covariates(
+    names: tuple[str, ...], arms: list[tuple[int, np.ndarray, np.ndarray]], ratio: bool
+) -> np.ndarray:
     """Weights (variables × 2) of the covariate and the indicator."""
-    names = next(iter(arms.values())).names
     h = _index(names, "h")
     if not ratio:
         return np.column_stack([_index(names, "c"), h])
-    total = sum(a.n for a in arms.values())
-    xpre = sum(a.n * a.mean[names.index("xpre")] for a in arms.values()) / total
-    ypre = sum(a.n * a.mean[names.index("ypre")] for a in arms.values()) / total
+    total = sum(n for n, _, _ in arms)
+    xpre = sum(n * mean[names.index("xpre")] for n, mean, _ in arms) / total
+    ypre = sum(n * mean[names.index("ypre")] for n, mean, _ in arms) / total
     if ypre == 0:  # no pre-period denominator anywhere: the numerator alone
         return np.column_stack([_index(names, "xpre"), h])
     linear = (_index(names, "xpre") - (xpre / ypre) * _index(names, "ypre")) / ypre
     return np.column_stack([linear, h])
 
 
-def pooled_theta(arms: Mapping[str, UnitVectors], ratio: bool) -> np.ndarray:
-    """The within-variant slope of the outcome on the covariates, pooled over variants.
+def pooled_theta(
+    names: tuple[str, ...],
+    arms: list[tuple[int, np.ndarray, np.ndarray]],
+    weights: np.ndarray,
+    ratio: bool,
+) -> np.ndarray:
+    """The within-variant slope of the outcome on the covariates (``weights``), pooled over
+    the variants ``arms`` (n, means, covariance matrix).
 
     A covariate without within-variant variation (all units alike, or collinear with the
     other) gets the least-squares minimum-norm share, 0 if it never varies.
     """
-    weights = _covariates(arms, ratio)
     s_cc = np.zeros((2, 2))
     s_cy = np.zeros(2)
-    for arm in arms.values():
-        _, cov = arm.arrays()
-        _, w = _outcome(arm, ratio)
-        s_cc += (arm.n - 1) * (weights.T @ cov @ weights)
-        s_cy += (arm.n - 1) * (weights.T @ cov @ w)
+    for n, mean, cov in arms:
+        _, w = _outcome(names, mean, ratio)
+        s_cc += (n - 1) * (weights.T @ cov @ weights)
+        s_cy += (n - 1) * (weights.T @ cov @ w)
     scale = np.sqrt(np.clip(np.diag(s_cc), 0.0, None))
     keep = scale > 0
     theta = np.zeros(2)
@@ -130,32 +134,34 @@ def cuped_compare(
 ) -> CupedEffect:
     """The CUPED-adjusted effect of ``treatment`` against ``control``; θ is pooled over every
     variant in ``arms`` (all analysed variants of the experiment)."""
-    names = {a.names for a in arms.values()}
-    if len(names) != 1 or next(iter(names)) not in (PER_UNIT, RATIO):
+    layouts = {a.names for a in arms.values()}
+    if len(layouts) != 1 or next(iter(layouts)) not in (PER_UNIT, RATIO):
         raise StatsError(f"CUPED moments must name the variables {PER_UNIT} or {RATIO}")
-    ratio = next(iter(names)) == RATIO
+    names = layouts.pop()
+    ratio = names == RATIO
     for variant in (treatment, control):
         if arms[variant].n < 2:
             raise StatsError(f"needs at least 2 units, has {arms[variant].n}")
         if arms[variant].mean[arms[variant].names.index("h")] == 0:
             raise StatsError(f"no unit of variant '{variant}' has pre-period data")
-    theta = pooled_theta(arms, ratio)
-    weights = _covariates(arms, ratio)
-    total = sum(a.n for a in arms.values())
-    centre = sum(a.n * (weights.T @ a.arrays()[0]) for a in arms.values()) / total
+    arrays = {v: (a.n, *a.arrays()) for v, a in arms.items()}
+    every = list(arrays.values())
+    weights = _covariates(names, every, ratio)
+    theta = pooled_theta(names, every, weights, ratio)
+    total = sum(n for n, _, _ in every)
+    centre = sum(n * (weights.T @ mean) for n, mean, _ in every) / total
     adjusted: dict[str, Moments] = {}
     observed: dict[str, float] = {}
     plain = 0.0
     for variant in (treatment, control):
-        arm = arms[variant]
-        mean, cov = arm.arrays()
-        value, w = _outcome(arm, ratio)
+        n, mean, cov = arrays[variant]
+        value, w = _outcome(names, mean, ratio)
         residual = w - weights @ theta
         shift = float(theta @ (weights.T @ mean - centre))
         variance = max(float(residual @ cov @ residual), 0.0)
-        adjusted[variant] = Moments.of_mean(arm.n, value - shift, variance)
+        adjusted[variant] = Moments.of_mean(n, value - shift, variance)
         observed[variant] = value
-        plain += max(float(w @ cov @ w), 0.0) / arm.n
+        plain += max(float(w @ cov @ w), 0.0) / n
     effect = compare(adjusted[treatment], adjusted[control], alpha=alpha)
     after = sum(m.var_x / m.n for m in adjusted.values())
     method = ("delta" if ratio else "welch") + "+cuped"

@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from functools import lru_cache
 
 from scipy import stats as st
 
@@ -24,6 +25,7 @@ from metricforge.stats.moments import Moments, ratio_point_and_variance
 METHOD = "outer-ci"
 
 
+@lru_cache(maxsize=64)
 def two_sided_z(alpha: float) -> float:
     """The standard normal quantile at 1 − α/2."""
     if not 0.0 < alpha < 1.0:
