@@ -212,7 +212,21 @@ WITH first_exposure AS (
       ) > 0
       THEN 1
       ELSE 0
-    END AS spre_session_success
+    END AS spre_session_success,
+    SUM(
+      CASE
+        WHEN e.event IN ('purchase') AND e.ts >= f.first_ts
+        THEN CAST(e.value AS DECIMAL(38, 10))
+      END
+    ) AS s_revenue_winsorised,
+    SUM(
+      CASE
+        WHEN e.event IN ('purchase') AND NOT (
+          e.ts >= f.first_ts
+        )
+        THEN CAST(e.value AS DECIMAL(38, 10))
+      END
+    ) AS spre_revenue_winsorised
   FROM first_exposure AS f
   LEFT JOIN events AS e
     ON e.cookie_id = f.unit
@@ -272,7 +286,9 @@ WITH first_exposure AS (
     CAST(COALESCE(SUM(s_session_success), 0) AS BIGINT) AS u_session_success,
     COUNT(CASE WHEN n_events > 0 THEN session END) AS d_session_success,
     CAST(COALESCE(SUM(spre_session_success), 0) AS BIGINT) AS upre_session_success,
-    COUNT(CASE WHEN n_pre_events > 0 THEN session END) AS dpre_session_success
+    COUNT(CASE WHEN n_pre_events > 0 THEN session END) AS dpre_session_success,
+    CAST(COALESCE(SUM(s_revenue_winsorised), 0) AS DOUBLE) AS u_revenue_winsorised,
+    CAST(COALESCE(SUM(spre_revenue_winsorised), 0) AS DOUBLE) AS upre_revenue_winsorised
   FROM sessions
   GROUP BY
     unit,
@@ -322,30 +338,32 @@ SELECT
   ) AS x_net_value,
   (
     CAST(1.0 AS DOUBLE) * CAST(upre_revenue AS DOUBLE) + CAST(-25.0 AS DOUBLE) * CAST(upre_unsubscribes AS DOUBLE)
-  ) AS xpre_net_value
+  ) AS xpre_net_value,
+  CAST(u_revenue_winsorised AS DOUBLE) AS x_revenue_winsorised,
+  CAST(upre_revenue_winsorised AS DOUBLE) AS xpre_revenue_winsorised
 FROM units;
 
 -- moments
 WITH cap_values AS (
   SELECT
-    'revenue' AS k,
-    CAST(x_revenue AS DOUBLE) AS v,
+    'revenue_winsorised' AS k,
+    CAST(x_revenue_winsorised AS DOUBLE) AS v,
     CAST(0.999 AS DOUBLE) AS lvl
   FROM unit_rows
   WHERE
     (
       NOT is_bot AND NOT contaminated
-    ) AND NOT x_revenue IS NULL
+    ) AND NOT x_revenue_winsorised IS NULL
   UNION ALL
   SELECT
-    'revenue:pre' AS k,
-    CAST(xpre_revenue AS DOUBLE) AS v,
+    'revenue_winsorised:pre' AS k,
+    CAST(xpre_revenue_winsorised AS DOUBLE) AS v,
     CAST(0.999 AS DOUBLE) AS lvl
   FROM unit_rows
   WHERE
     (
       NOT is_bot AND NOT contaminated
-    ) AND NOT x_revenue IS NULL
+    ) AND NOT x_revenue_winsorised IS NULL
 ), cap_ranked AS (
   SELECT
     k,
@@ -365,8 +383,8 @@ WITH cap_values AS (
     k
 ), caps AS (
   SELECT
-    MAX(CASE WHEN k = 'revenue' THEN cap END) AS revenue__cap,
-    MAX(CASE WHEN k = 'revenue:pre' THEN cap END) AS revenue__cap_pre
+    MAX(CASE WHEN k = 'revenue_winsorised' THEN cap END) AS revenue_winsorised__cap,
+    MAX(CASE WHEN k = 'revenue_winsorised:pre' THEN cap END) AS revenue_winsorised__cap_pre
   FROM cap_levels
 )
 SELECT
@@ -376,12 +394,8 @@ SELECT
   COUNT(*) AS n_units,
   CAST(SUM(n_events) AS BIGINT) AS n_events,
   COUNT(x_revenue) AS revenue__n,
-  AVG(
-    CASE WHEN x_revenue > caps.revenue__cap THEN caps.revenue__cap ELSE x_revenue END ORDER BY unit
-  ) AS revenue__mean_x,
-  VARIANCE(
-    CASE WHEN x_revenue > caps.revenue__cap THEN caps.revenue__cap ELSE x_revenue END ORDER BY unit
-  ) AS revenue__var_x,
+  AVG(x_revenue ORDER BY unit) AS revenue__mean_x,
+  VARIANCE(x_revenue ORDER BY unit) AS revenue__var_x,
   COUNT(x_unsubscribes) AS unsubscribes__n,
   AVG(x_unsubscribes ORDER BY unit) AS unsubscribes__mean_x,
   VARIANCE(x_unsubscribes ORDER BY unit) AS unsubscribes__var_x,
@@ -417,7 +431,22 @@ SELECT
   COVAR_SAMP(x_session_success, y_session_success ORDER BY unit) AS session_success__cov_xy,
   COUNT(x_net_value) AS net_value__n,
   AVG(x_net_value ORDER BY unit) AS net_value__mean_x,
-  VARIANCE(x_net_value ORDER BY unit) AS net_value__var_x
+  VARIANCE(x_net_value ORDER BY unit) AS net_value__var_x,
+  COUNT(x_revenue_winsorised) AS revenue_winsorised__n,
+  AVG(
+    CASE
+      WHEN x_revenue_winsorised > caps.revenue_winsorised__cap
+      THEN caps.revenue_winsorised__cap
+      ELSE x_revenue_winsorised
+    END ORDER BY unit
+  ) AS revenue_winsorised__mean_x,
+  VARIANCE(
+    CASE
+      WHEN x_revenue_winsorised > caps.revenue_winsorised__cap
+      THEN caps.revenue_winsorised__cap
+      ELSE x_revenue_winsorised
+    END ORDER BY unit
+  ) AS revenue_winsorised__var_x
 FROM unit_rows
 CROSS JOIN caps
 GROUP BY
@@ -432,24 +461,24 @@ ORDER BY
 -- caps
 WITH cap_values AS (
   SELECT
-    'revenue' AS k,
-    CAST(x_revenue AS DOUBLE) AS v,
+    'revenue_winsorised' AS k,
+    CAST(x_revenue_winsorised AS DOUBLE) AS v,
     CAST(0.999 AS DOUBLE) AS lvl
   FROM unit_rows
   WHERE
     (
       NOT is_bot AND NOT contaminated
-    ) AND NOT x_revenue IS NULL
+    ) AND NOT x_revenue_winsorised IS NULL
   UNION ALL
   SELECT
-    'revenue:pre' AS k,
-    CAST(xpre_revenue AS DOUBLE) AS v,
+    'revenue_winsorised:pre' AS k,
+    CAST(xpre_revenue_winsorised AS DOUBLE) AS v,
     CAST(0.999 AS DOUBLE) AS lvl
   FROM unit_rows
   WHERE
     (
       NOT is_bot AND NOT contaminated
-    ) AND NOT x_revenue IS NULL
+    ) AND NOT x_revenue_winsorised IS NULL
 ), cap_ranked AS (
   SELECT
     k,
@@ -469,8 +498,8 @@ WITH cap_values AS (
     k
 ), caps AS (
   SELECT
-    MAX(CASE WHEN k = 'revenue' THEN cap END) AS revenue__cap,
-    MAX(CASE WHEN k = 'revenue:pre' THEN cap END) AS revenue__cap_pre
+    MAX(CASE WHEN k = 'revenue_winsorised' THEN cap END) AS revenue_winsorised__cap,
+    MAX(CASE WHEN k = 'revenue_winsorised:pre' THEN cap END) AS revenue_winsorised__cap_pre
   FROM cap_levels
 )
 SELECT
@@ -480,24 +509,24 @@ FROM caps;
 -- cuped
 WITH cap_values AS (
   SELECT
-    'revenue' AS k,
-    CAST(x_revenue AS DOUBLE) AS v,
+    'revenue_winsorised' AS k,
+    CAST(x_revenue_winsorised AS DOUBLE) AS v,
     CAST(0.999 AS DOUBLE) AS lvl
   FROM unit_rows
   WHERE
     (
       NOT is_bot AND NOT contaminated
-    ) AND NOT x_revenue IS NULL
+    ) AND NOT x_revenue_winsorised IS NULL
   UNION ALL
   SELECT
-    'revenue:pre' AS k,
-    CAST(xpre_revenue AS DOUBLE) AS v,
+    'revenue_winsorised:pre' AS k,
+    CAST(xpre_revenue_winsorised AS DOUBLE) AS v,
     CAST(0.999 AS DOUBLE) AS lvl
   FROM unit_rows
   WHERE
     (
       NOT is_bot AND NOT contaminated
-    ) AND NOT x_revenue IS NULL
+    ) AND NOT x_revenue_winsorised IS NULL
 ), cap_ranked AS (
   SELECT
     k,
@@ -517,54 +546,25 @@ WITH cap_values AS (
     k
 ), caps AS (
   SELECT
-    MAX(CASE WHEN k = 'revenue' THEN cap END) AS revenue__cap,
-    MAX(CASE WHEN k = 'revenue:pre' THEN cap END) AS revenue__cap_pre
+    MAX(CASE WHEN k = 'revenue_winsorised' THEN cap END) AS revenue_winsorised__cap,
+    MAX(CASE WHEN k = 'revenue_winsorised:pre' THEN cap END) AS revenue_winsorised__cap_pre
   FROM cap_levels
 )
 SELECT
   variant,
-  COUNT(
-    CAST(CASE WHEN x_revenue > caps.revenue__cap THEN caps.revenue__cap ELSE x_revenue END AS DOUBLE)
-  ) AS revenue__cv_n,
-  AVG(
-    CAST(CASE WHEN x_revenue > caps.revenue__cap THEN caps.revenue__cap ELSE x_revenue END AS DOUBLE) ORDER BY unit
-  ) AS revenue__cv_mean_x,
-  AVG(
-    CAST(CASE
-      WHEN xpre_revenue > caps.revenue__cap_pre
-      THEN caps.revenue__cap_pre
-      ELSE xpre_revenue
-    END AS DOUBLE) ORDER BY unit
-  ) AS revenue__cv_mean_c,
+  COUNT(CAST(x_revenue AS DOUBLE)) AS revenue__cv_n,
+  AVG(CAST(x_revenue AS DOUBLE) ORDER BY unit) AS revenue__cv_mean_x,
+  AVG(CAST(xpre_revenue AS DOUBLE) ORDER BY unit) AS revenue__cv_mean_c,
   AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS revenue__cv_mean_h,
-  VARIANCE(
-    CAST(CASE WHEN x_revenue > caps.revenue__cap THEN caps.revenue__cap ELSE x_revenue END AS DOUBLE) ORDER BY unit
-  ) AS revenue__cv_cov_x_x,
+  VARIANCE(CAST(x_revenue AS DOUBLE) ORDER BY unit) AS revenue__cv_cov_x_x,
+  COVAR_SAMP(CAST(x_revenue AS DOUBLE), CAST(xpre_revenue AS DOUBLE) ORDER BY unit) AS revenue__cv_cov_x_c,
   COVAR_SAMP(
-    CAST(CASE WHEN x_revenue > caps.revenue__cap THEN caps.revenue__cap ELSE x_revenue END AS DOUBLE),
-    CAST(CASE
-      WHEN xpre_revenue > caps.revenue__cap_pre
-      THEN caps.revenue__cap_pre
-      ELSE xpre_revenue
-    END AS DOUBLE) ORDER BY unit
-  ) AS revenue__cv_cov_x_c,
-  COVAR_SAMP(
-    CAST(CASE WHEN x_revenue > caps.revenue__cap THEN caps.revenue__cap ELSE x_revenue END AS DOUBLE),
+    CAST(x_revenue AS DOUBLE),
     CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
   ) AS revenue__cv_cov_x_h,
-  VARIANCE(
-    CAST(CASE
-      WHEN xpre_revenue > caps.revenue__cap_pre
-      THEN caps.revenue__cap_pre
-      ELSE xpre_revenue
-    END AS DOUBLE) ORDER BY unit
-  ) AS revenue__cv_cov_c_c,
+  VARIANCE(CAST(xpre_revenue AS DOUBLE) ORDER BY unit) AS revenue__cv_cov_c_c,
   COVAR_SAMP(
-    CAST(CASE
-      WHEN xpre_revenue > caps.revenue__cap_pre
-      THEN caps.revenue__cap_pre
-      ELSE xpre_revenue
-    END AS DOUBLE),
+    CAST(xpre_revenue AS DOUBLE),
     CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
   ) AS revenue__cv_cov_c_h,
   VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS revenue__cv_cov_h_h,
@@ -805,7 +805,72 @@ SELECT
     CAST(xpre_net_value AS DOUBLE),
     CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
   ) AS net_value__cv_cov_c_h,
-  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS net_value__cv_cov_h_h
+  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS net_value__cv_cov_h_h,
+  COUNT(
+    CAST(CASE
+      WHEN x_revenue_winsorised > caps.revenue_winsorised__cap
+      THEN caps.revenue_winsorised__cap
+      ELSE x_revenue_winsorised
+    END AS DOUBLE)
+  ) AS revenue_winsorised__cv_n,
+  AVG(
+    CAST(CASE
+      WHEN x_revenue_winsorised > caps.revenue_winsorised__cap
+      THEN caps.revenue_winsorised__cap
+      ELSE x_revenue_winsorised
+    END AS DOUBLE) ORDER BY unit
+  ) AS revenue_winsorised__cv_mean_x,
+  AVG(
+    CAST(CASE
+      WHEN xpre_revenue_winsorised > caps.revenue_winsorised__cap_pre
+      THEN caps.revenue_winsorised__cap_pre
+      ELSE xpre_revenue_winsorised
+    END AS DOUBLE) ORDER BY unit
+  ) AS revenue_winsorised__cv_mean_c,
+  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS revenue_winsorised__cv_mean_h,
+  VARIANCE(
+    CAST(CASE
+      WHEN x_revenue_winsorised > caps.revenue_winsorised__cap
+      THEN caps.revenue_winsorised__cap
+      ELSE x_revenue_winsorised
+    END AS DOUBLE) ORDER BY unit
+  ) AS revenue_winsorised__cv_cov_x_x,
+  COVAR_SAMP(
+    CAST(CASE
+      WHEN x_revenue_winsorised > caps.revenue_winsorised__cap
+      THEN caps.revenue_winsorised__cap
+      ELSE x_revenue_winsorised
+    END AS DOUBLE),
+    CAST(CASE
+      WHEN xpre_revenue_winsorised > caps.revenue_winsorised__cap_pre
+      THEN caps.revenue_winsorised__cap_pre
+      ELSE xpre_revenue_winsorised
+    END AS DOUBLE) ORDER BY unit
+  ) AS revenue_winsorised__cv_cov_x_c,
+  COVAR_SAMP(
+    CAST(CASE
+      WHEN x_revenue_winsorised > caps.revenue_winsorised__cap
+      THEN caps.revenue_winsorised__cap
+      ELSE x_revenue_winsorised
+    END AS DOUBLE),
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+  ) AS revenue_winsorised__cv_cov_x_h,
+  VARIANCE(
+    CAST(CASE
+      WHEN xpre_revenue_winsorised > caps.revenue_winsorised__cap_pre
+      THEN caps.revenue_winsorised__cap_pre
+      ELSE xpre_revenue_winsorised
+    END AS DOUBLE) ORDER BY unit
+  ) AS revenue_winsorised__cv_cov_c_c,
+  COVAR_SAMP(
+    CAST(CASE
+      WHEN xpre_revenue_winsorised > caps.revenue_winsorised__cap_pre
+      THEN caps.revenue_winsorised__cap_pre
+      ELSE xpre_revenue_winsorised
+    END AS DOUBLE),
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+  ) AS revenue_winsorised__cv_cov_c_h,
+  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS revenue_winsorised__cv_cov_h_h
 FROM unit_rows
 CROSS JOIN caps
 WHERE
