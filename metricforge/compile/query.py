@@ -12,7 +12,12 @@ stages (CTEs):
   (unit select)   per-unit bot verdict and contamination flag; final metric columns
 
 Result queries read only ``unit_rows`` and return a few rows each:
-  moments         per-variant sufficient statistics with centred aggregates
+  moments         per-variant sufficient statistics with centred aggregates (winsorised
+                  metrics capped at the cap computed in its own CTEs)
+  caps, cuped, quantile_<metric>   see ``compile/extras.py``
+
+A quantile metric adds ``v_<metric>`` to ``unit_rows``: the unit's sorted list of values
+(its ``x_<metric>`` is the number of values, NULL without any).
 
 The unit query reads two views, ``events`` and ``exposures``, that the engine registers.
 """

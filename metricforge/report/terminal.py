@@ -23,6 +23,16 @@ def _pct(value: Any) -> str:
     return f"{100 * value:+.2f}%"
 
 
+def _method(row: dict[str, Any]) -> str:
+    """The method, with CUPED's variance reduction and a winsorising cap where they apply."""
+    notes = [row["method"]]
+    if row.get("variance_reduction") is not None:
+        notes.append(f"variance -{100 * row['variance_reduction']:.1f}%")
+    if row.get("cap") is not None:
+        notes.append(f"cap {_num(row['cap'])}")
+    return ", ".join(notes)
+
+
 def render(card: Scorecard, console: Console) -> None:
     trust = card.trust
     verdict = trust["verdict"].upper()
@@ -64,7 +74,7 @@ def render(card: Scorecard, console: Console) -> None:
             f"{_num(r['abs_effect'])} ({_num(r['abs_ci_low'])}, {_num(r['abs_ci_high'])})",
             f"{_pct(r['rel_effect'])} ({_pct(r['rel_ci_low'])}, {_pct(r['rel_ci_high'])})",
             _num(r["p_value"], 3),
-            r["method"],
+            _method(r),
             style="bold" if significant else None,
         )
     console.print(table)
