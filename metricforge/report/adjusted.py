@@ -15,15 +15,6 @@ from metricforge.stats.cuped import CupedEffect, cuped_compare
 from metricforge.stats.quantiles import quantile_compare
 
 EXTRA_COLUMNS = ("variance_reduction", "cap")
-_NAN_FIELDS = (
-    "abs_effect",
-    "abs_ci_low",
-    "abs_ci_high",
-    "rel_effect",
-    "rel_ci_low",
-    "rel_ci_high",
-    "p_value",
-)
 
 
 def _cuped(data: RunData, metric: str, variant: str) -> CupedEffect | None:
@@ -49,13 +40,10 @@ def adjusted_effect(data: RunData, metric: str, variant: str) -> Effect | None:
                 raise StatsError("a variant has no values of this quantile metric")
             return quantile_compare(t, c, q=definition.q, alpha=alpha)
         except StatsError as err:  # the quantiles themselves are still worth showing
-            nan = math.nan
-            return Effect(
-                value=t.quantile if t is not None else nan,
-                control_value=c.quantile if c is not None else nan,
-                **dict.fromkeys(_NAN_FIELDS, nan),
-                method=f"not computed: {err.message}",
-            )
+            numbers = {f.name: math.nan for f in dataclasses.fields(Effect) if f.name != "method"}
+            numbers["value"] = t.quantile if t is not None else math.nan
+            numbers["control_value"] = c.quantile if c is not None else math.nan
+            return Effect(**numbers, method=f"not computed: {err.message}")
     if metric not in data.extras.cuped:
         return None
     try:
