@@ -19,6 +19,7 @@ import polars as pl
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from scipy import stats as sst
 from typer.testing import CliRunner
 
 from metricforge.cli import app
@@ -161,3 +162,34 @@ def test_quantile_metric_is_not_a_ratio_part(tmp_path: Path) -> None:
     result = CliRunner().invoke(app, ["check", str(spec)])
     assert result.exit_code == 2
     assert "'p90' is a quantile metric" in result.stderr
+
+
+@pytest.mark.parametrize(
+    ("side", "margin", "below_half"),
+    [(1, None, True), (-1, None, False), (1, 0.02, True), (-1, 0.02, True)],
+    ids=["harm-higher-worse", "harm-lower-worse", "ni-higher-worse", "ni-lower-worse"],
+)
+def test_one_sided_hypotheses_of_a_guardrail(
+    side: int, margin: float | None, below_half: bool
+) -> None:
+    """Treatment 10 above control (SEs from the band widths): a harm test against "higher
+    is worse" has p < 1/2, against "lower is worse" p > 1/2; non-inferiority with a 2%
+    margin (13.8) tests the contrast t − (1 ± 0.02)·c by z. The CI stays two-sided."""
+    t = summary(700.0, 680.0, 724.0, BELOW)
+    c = summary(690.0, 671.0, 711.0, BELOW)
+    z = two_sided_z(0.05)
+    se_t, se_c = 44.0 / (2 * z), 40.0 / (2 * z)
+    k = 1.0 + side * margin if margin is not None else 1.0
+    sign = side if margin is None else -side
+    expected = float(sst.norm.sf(sign * (700.0 - k * 690.0) / math.hypot(se_t, k * se_c)))
+    effect = quantile_compare(t, c, q=Q, side=side, margin=margin)
+    two_sided = quantile_compare(t, c, q=Q)
+    assert effect.p_value == pytest.approx(expected, rel=1e-12)
+    assert (effect.p_value < 0.5) is below_half
+    assert (effect.abs_ci_low, effect.abs_ci_high) == (two_sided.abs_ci_low, two_sided.abs_ci_high)
+
+
+def test_margin_needs_a_one_sided_test() -> None:
+    t = summary(700.0, 680.0, 724.0, BELOW)
+    with pytest.raises(StatsError, match="margin"):
+        quantile_compare(t, t, q=Q, margin=0.02)

@@ -17,20 +17,27 @@ from metricforge.stats.quantiles import quantile_compare
 EXTRA_COLUMNS = ("variance_reduction", "cap")
 
 
-def _cuped(data: RunData, metric: str, variant: str) -> CupedEffect | None:
+def _cuped(data: RunData, metric: str, variant: str, **test: Any) -> CupedEffect | None:
     arms = data.extras.cuped.get(metric)
     if arms is None:
         return None
-    return cuped_compare(arms, variant, data.plan.spec.control, alpha=data.plan.spec.alpha)
+    control, alpha = data.plan.spec.control, data.plan.spec.alpha
+    return cuped_compare(arms, variant, control, alpha=alpha, **test)
 
 
-def adjusted_effect(data: RunData, metric: str, variant: str) -> Effect | None:
+def adjusted_effect(
+    data: RunData, metric: str, variant: str, *, side: int = 0, margin: float | None = None
+) -> Effect | None:
     """The effect of a quantile or CUPED-adjusted metric; None for every other metric.
 
-    CUPED that cannot be applied (e.g. a compared variant without any pre-period data)
-    falls back to the unadjusted effect and says why in `method`.
+    ``side`` and ``margin`` choose the p-value's hypothesis (0: two-sided; see
+    ``stats.quantiles.quantile_compare``). CUPED that cannot be applied (e.g. a compared
+    variant without any pre-period data) falls back to the unadjusted effect and says why
+    in `method`.
     """
     control, alpha = data.plan.spec.control, data.plan.spec.alpha
+    # passed to compare only when not the default, which every version of it accepts
+    test: dict[str, Any] = {} if side == 0 and margin is None else {"side": side, "margin": margin}
     definition = data.plan.metric(metric)
     if definition.kind is Kind.QUANTILE:
         summaries = data.extras.quantiles[metric]
@@ -38,7 +45,7 @@ def adjusted_effect(data: RunData, metric: str, variant: str) -> Effect | None:
         try:
             if t is None or c is None:
                 raise StatsError("a variant has no values of this quantile metric")
-            return quantile_compare(t, c, q=definition.q, alpha=alpha)
+            return quantile_compare(t, c, q=definition.q, alpha=alpha, side=side, margin=margin)
         except StatsError as err:  # the quantiles themselves are still worth showing
             numbers = {f.name: math.nan for f in dataclasses.fields(Effect) if f.name != "method"}
             numbers["value"] = t.quantile if t is not None else math.nan
@@ -47,10 +54,10 @@ def adjusted_effect(data: RunData, metric: str, variant: str) -> Effect | None:
     if metric not in data.extras.cuped:
         return None
     try:
-        result = _cuped(data, metric, variant)
+        result = _cuped(data, metric, variant, **test)
     except StatsError as err:
         moments = data.moments[metric]
-        plain = compare(moments[variant], moments[control], alpha=alpha)
+        plain = compare(moments[variant], moments[control], alpha=alpha, **test)
         return dataclasses.replace(
             plain, method=f"{plain.method} (cuped not applied: {err.message})"
         )

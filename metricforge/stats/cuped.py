@@ -24,6 +24,7 @@ from __future__ import annotations
 import dataclasses
 from collections.abc import Mapping
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -131,9 +132,11 @@ def cuped_compare(
     control: str,
     *,
     alpha: float = 0.05,
+    **test: Any,
 ) -> CupedEffect:
     """The CUPED-adjusted effect of ``treatment`` against ``control``; θ is pooled over every
-    variant in ``arms`` (all analysed variants of the experiment)."""
+    variant in ``arms`` (all analysed variants of the experiment). ``test`` holds further
+    options of ``compare`` (the hypothesis of the p-value), passed on unchanged."""
     layouts = {a.names for a in arms.values()}
     if len(layouts) != 1 or next(iter(layouts)) not in (PER_UNIT, RATIO):
         raise StatsError(f"CUPED moments must name the variables {PER_UNIT} or {RATIO}")
@@ -162,7 +165,7 @@ def cuped_compare(
         adjusted[variant] = Moments.of_mean(n, value - shift, variance)
         observed[variant] = value
         plain += max(float(w @ cov @ w), 0.0) / n
-    effect = compare(adjusted[treatment], adjusted[control], alpha=alpha)
+    effect = compare(adjusted[treatment], adjusted[control], alpha=alpha, **test)
     after = sum(m.var_x / m.n for m in adjusted.values())
     method = ("delta" if ratio else "welch") + "+cuped"
     effect = dataclasses.replace(

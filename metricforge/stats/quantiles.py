@@ -80,25 +80,45 @@ def quantile_se(summary: QuantileSummary, q: float, alpha: float) -> float:
 
 
 def quantile_compare(
-    treatment: QuantileSummary, control: QuantileSummary, *, q: float, alpha: float = 0.05
+    treatment: QuantileSummary,
+    control: QuantileSummary,
+    *,
+    q: float,
+    alpha: float = 0.05,
+    side: int = 0,
+    margin: float | None = None,
 ) -> Effect:
-    """Treatment minus control quantile, CI and two-sided p-value (z; independent arms);
-    the relative effect by the delta method."""
+    """Treatment minus control quantile, its CI (two-sided, 1 − alpha) and p-value by z
+    (independent arms); the relative effect by the delta method.
+
+    ``side`` 0 tests "no difference" two-sided; ±1 is one-sided against that bad direction
+    (+1: higher is worse): a harm test, or with a relative ``margin`` m the
+    non-inferiority test of H0 "worse by m·|control| or more".
+    """
+    if side not in (-1, 0, 1) or (margin is not None and (side == 0 or not margin > 0)):
+        raise StatsError("a margin needs a one-sided test (side ±1) and must be positive")
     se_t = quantile_se(treatment, q, alpha)
     se_c = quantile_se(control, q, alpha)
     z = two_sided_z(alpha)
-    diff = treatment.quantile - control.quantile
-    se = math.hypot(se_t, se_c)
-    if se == 0:
-        p, half = (1.0 if diff == 0 else 0.0), 0.0
+    t, c = treatment.quantile, control.quantile
+    diff = t - c
+    half = z * math.hypot(se_t, se_c)
+    # the tested contrast is t − k·c: k = 1, or 1 ± margin for non-inferiority
+    k = 1.0 if margin is None else 1.0 + side * margin * (-1.0 if c < 0 else 1.0)
+    contrast = t - k * c
+    se = math.hypot(se_t, k * se_c)
+    sign = float(side) if margin is None else -float(side)
+    if se == 0:  # no spread in either variant: the contrast is known exactly
+        known = contrast == 0 if side == 0 else sign * contrast <= 0
+        p = 1.0 if known else 0.0
+    elif side == 0:
+        p = 2.0 * float(st.norm.sf(abs(contrast) / se))
     else:
-        p, half = 2.0 * float(st.norm.sf(abs(diff) / se)), z * se
-    rel, rel_low, rel_high = _relative(
-        treatment.quantile, se_t * se_t, control.quantile, se_c * se_c, z
-    )
+        p = float(st.norm.sf(sign * contrast / se))
+    rel, rel_low, rel_high = _relative(t, se_t * se_t, c, se_c * se_c, z)
     return Effect(
-        value=treatment.quantile,
-        control_value=control.quantile,
+        value=t,
+        control_value=c,
         abs_effect=diff,
         abs_ci_low=diff - half,
         abs_ci_high=diff + half,
