@@ -9,6 +9,7 @@ from typing import Any
 
 import pyarrow as pa
 
+from metricforge.adjustments import Extras, read_extras
 from metricforge.compile.expressions import columns_of
 from metricforge.compile.query import compile_plan, result_columns
 from metricforge.engines.base import Engine, EngineInputs
@@ -47,6 +48,7 @@ class RunData:
     # Extra sections for manifest.json (how inputs were hashed, what a rerun started from).
     provenance: dict[str, Any] = field(default_factory=dict)
     tables: dict[str, pa.Table] = field(default_factory=dict)  # every result query's table
+    extras: Extras = field(default_factory=Extras)  # caps, CUPED moments, quantile summaries
 
 
 def needed_event_columns(plan: Plan) -> tuple[str, ...]:
@@ -88,6 +90,7 @@ def execute(plan: Plan, engine: Engine) -> RunData:
     tables = engine.run(compile_plan(plan, engine.dialect), engine_inputs)
     data = reshape(plan, stamp, files, tables["moments"])
     data.tables = tables
+    data.extras = read_extras(plan, tables)
     return data
 
 

@@ -21,6 +21,8 @@ from tests.conftest import DEMO_EXPERIMENTS, PIPELINES, SAMPLE, successful_sessi
 START, END, WINDOW = dt.datetime(2026, 9, 15), dt.datetime(2026, 9, 29), dt.timedelta(days=14)
 UA_TOKENS = ("bot", "crawler", "spider", "headless")  # bots@2 rule 1
 SESSION_LIMIT = 60  # bots@2 rule 2
+REVENUE_CAP_LEVEL = 0.999  # metric_defs: revenue_winsorised winsorise
+P95 = 0.95  # metric_defs: page_latency_p95 q
 
 
 @pytest.fixture(scope="module")
@@ -74,6 +76,11 @@ def reference(events: pl.DataFrame, experiment: str) -> dict[str, dict[str, tupl
         (pl.col("purchases") > 0).cast(pl.Float64).alias("buyer_share"),
         (pl.col("revenue") - 25.0 * pl.col("unsubscribes")).alias("net_value"),
     )
+    # revenue_winsorised: revenue capped at its 0.999 quantile (linear interpolation) over
+    # the pooled per-unit values of all analysed units of all variants
+    revenue = table["revenue"].cast(pl.Float64)
+    cap = float(revenue.quantile(REVENUE_CAP_LEVEL, "linear"))
+    table = table.with_columns(revenue.clip(upper_bound=cap).alias("revenue_winsorised"))
     # dwell success per session: a click with no back within (t, t + 30 s]
     sessions = (
         ev.filter(pl.col("session_id").is_not_null())
@@ -94,11 +101,21 @@ def reference(events: pl.DataFrame, experiment: str) -> dict[str, dict[str, tupl
         .group_by("cookie_id")
         .agg(pl.col("latency_ms").mean().alias("lat"))
     )
-    out: dict[str, dict[str, tuple[float, int]]] = {}
+    out: dict[str, dict[str, tuple[float, int]]] = {"revenue_cap": {"all": (cap, table.height)}}
+    # p95 of the event-level latencies of each variant's analysed units (linear rule)
+    loads = ev.filter(is_("page_load") & pl.col("latency_ms").is_not_null()).join(
+        units.select("unit_id", "variant"), left_on="cookie_id", right_on="unit_id"
+    )
+    for variant, frame in loads.group_by("variant"):
+        p95 = float(frame["latency_ms"].quantile(P95, "linear"))
+        out.setdefault("page_latency_p95", {})[str(variant[0])] = (
+            p95,
+            frame["cookie_id"].n_unique(),
+        )
     for variant, frame in table.group_by("variant"):
         v = str(variant[0])
         n = frame.height
-        for name in (*cols, "buyer_share", "net_value"):
+        for name in (*cols, "buyer_share", "net_value", "revenue_winsorised"):
             out.setdefault(name, {})[v] = (float(frame[name].cast(pl.Float64).mean()), n)
         out.setdefault("click_through", {})[v] = (
             frame["clicks"].sum() / frame["impressions"].sum(),
@@ -129,13 +146,20 @@ def test_every_value_matches_independent_computation(
 ) -> None:
     expected = reference(events, experiment)
     rows = json.loads((scorecards[experiment] / "scorecard.json").read_text())["metrics"]
-    assert {r["metric"] for r in rows} == set(expected) - {"impressions", "clicks"}
+    not_reported = {"impressions", "clicks", "revenue_cap"}
+    if experiment != "checkout_layout":
+        not_reported.add("revenue_winsorised")
+    assert {r["metric"] for r in rows} == set(expected) - not_reported
     for row in rows:
         ref = expected[row["metric"]]
         assert row["value"] == pytest.approx(ref["treatment"][0], rel=1e-9), row["metric"]
         assert row["control_value"] == pytest.approx(ref["control"][0], rel=1e-9), row["metric"]
         assert row["n_units"] == ref["treatment"][1], row["metric"]
         assert row["n_units_control"] == ref["control"][1], row["metric"]
+        if row["metric"] == "revenue_winsorised":
+            assert row["cap"] == pytest.approx(expected["revenue_cap"]["all"][0], rel=1e-12)
+        else:
+            assert row["cap"] is None, row["metric"]
 
 
 def test_true_effect_inside_decision_ci(scorecards: dict[str, Path]) -> None:
@@ -194,17 +218,30 @@ def test_methods_hypotheses_and_adjusted_p_values(scorecards: dict[str, Path]) -
     across the diagnostics (statsmodels multipletests as the reference library)."""
     from statsmodels.stats.multitest import multipletests
 
+    methods = {  # checkout_layout has CUPED on; homepage_aa has not
+        "checkout_layout": {
+            "revenue": "welch+cuped",
+            "buyer_share": "welch+cuped",
+            "click_through": "delta+cuped",
+            "session_success": "delta+cuped",
+            "net_value": "welch+cuped",
+            "page_latency_p95": "outer-ci",
+        },
+        "homepage_aa": {
+            "revenue": "welch",
+            "buyer_share": "newcombe+z",
+            "click_through": "delta",
+            "session_success": "delta",
+            "net_value": "welch",
+        },
+    }
+    for experiment, expected in methods.items():
+        card = json.loads((scorecards[experiment] / "scorecard.json").read_text())
+        got = {r["metric"]: r["method"] for r in card["metrics"]}
+        for metric, method in expected.items():
+            assert got[metric] == method, (experiment, metric)
     rows = json.loads((scorecards["checkout_layout"] / "scorecard.json").read_text())["metrics"]
     by_metric = {r["metric"]: r for r in rows}
-    expected = {
-        "revenue": "welch",
-        "buyer_share": "newcombe+z",
-        "click_through": "delta",
-        "session_success": "delta",
-        "net_value": "welch",
-    }
-    for metric, method in expected.items():
-        assert by_metric[metric]["method"] == method
     decision = by_metric["revenue"]
     assert decision["p_value_adjusted"] == decision["p_value"]  # Holm over one arm
     assert decision["adjustment"].startswith("holm")
@@ -212,7 +249,7 @@ def test_methods_hypotheses_and_adjusted_p_values(scorecards: dict[str, Path]) -
     bh = multipletests([r["p_value"] for r in diagnostics], method="fdr_bh")[1]
     assert [r["p_value_adjusted"] for r in diagnostics] == pytest.approx(bh, rel=1e-12)
     assert {r["adjustment"] for r in diagnostics} == {
-        "bh: 7 diagnostic tests (7 metrics x 1 arm(s))"
+        "bh: 8 diagnostic tests (8 metrics x 1 arm(s))"
     }
     unsub, latency = by_metric["unsubscribes"], by_metric["page_latency"]
     assert unsub["hypothesis"] == "one-sided harm: higher is worse"

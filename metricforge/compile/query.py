@@ -12,7 +12,12 @@ stages (CTEs):
   (unit select)   per-unit bot verdict and contamination flag; final metric columns
 
 Result queries read only ``unit_rows`` and return a few rows each:
-  moments         per-variant sufficient statistics with centred aggregates
+  moments         per-variant sufficient statistics with centred aggregates (winsorised
+                  metrics capped at the cap computed in its own CTEs)
+  caps, cuped, quantile_<metric>   see ``compile/extras.py``
+
+A quantile metric adds ``v_<metric>`` to ``unit_rows``: the unit's sorted list of values
+(its ``x_<metric>`` is the number of values, NULL without any).
 
 The unit query reads two views, ``events`` and ``exposures``, that the engine registers.
 """
@@ -26,6 +31,7 @@ import sqlglot.expressions as exp
 
 from metricforge.compile.checks import check_results
 from metricforge.compile.expressions import qualify
+from metricforge.compile.extras import cap_ctes, capped, extra_results, with_ctes
 from metricforge.compile.stitch import stitch_stages
 from metricforge.spec.model import BotRule, Kind, MetricDef, Plan, RuleKind, TwoVariantPolicy
 
@@ -263,6 +269,18 @@ class _Builder:
             return parts
         if metric.kind is Kind.DWELL_SUCCESS:
             return [exp.alias_(self._dwell_success(metric, e, period_cond), s)]
+        if metric.kind is Kind.QUANTILE:  # the number of values and, in the experiment
+            assert metric.value is not None  # period, their list
+            listed_value = qualify(metric.value, e)
+            has = _and(cond, listed_value.is_(exp.null()).not_())
+            parts = [exp.alias_(exp.Count(this=_case(has, _lit(1))), s)]
+            if not period:
+                listed = exp.ArrayAgg(this=exp.cast(listed_value.copy(), DOUBLE))
+                where = exp.Where(this=has.copy())
+                parts.append(
+                    exp.alias_(exp.Filter(this=listed, expression=where), f"l_{metric.name}")
+                )
+            return parts
         return []  # ratio and composite are built from other metrics' per-unit columns
 
     def _dwell_success(self, metric: MetricDef, e: str, period_cond: exp.Expr | None) -> exp.Expr:
@@ -365,6 +383,14 @@ class _Builder:
                     exp.alias_(count.copy(), f"c{period}_{metric.name}"),
                 ]
             return parts
+        if metric.kind is Kind.QUANTILE:
+            parts = [exp.alias_(exp.cast(total, BIGINT), u)]
+            if not period:  # one sorted list per unit; sessions without values hold NULL
+                lists = _col(f"l_{metric.name}")
+                kept = exp.Where(this=lists.is_(exp.null()).not_())
+                flat = exp.Flatten(this=exp.Filter(this=exp.ArrayAgg(this=lists), expression=kept))
+                parts.append(exp.alias_(exp.ArraySort(this=flat), f"l_{metric.name}"))
+            return parts
         if metric.kind is Kind.DWELL_SUCCESS:
             session: exp.Expr = _col("session")
             if active is not None:
@@ -405,6 +431,9 @@ class _Builder:
                 exp.cast(_col(f"u{period}_{metric.name}"), DOUBLE),
                 exp.cast(_col(f"d{period}_{metric.name}"), DOUBLE),
             )
+        if metric.kind is Kind.QUANTILE:  # its number of values; NULL without any
+            count = _col(f"u{period}_{metric.name}")
+            return _case(count > _lit(0), exp.cast(count.copy(), DOUBLE)), None
         return self._per_unit(metric.name, period), None
 
     def classified(self) -> exp.Select:
@@ -449,12 +478,15 @@ class _Builder:
                 select = select.select(exp.alias_(x, f"x{period}_{metric.name}"))
                 if y is not None:
                     select = select.select(exp.alias_(y, f"y{period}_{metric.name}"))
+            if metric.kind is Kind.QUANTILE:  # the unit's values of a quantile metric
+                select = select.select(exp.alias_(_col(f"l_{metric.name}"), f"v_{metric.name}"))
         return select.from_("stitched" if stitched else "units")
 
     # -- stage 5 -------------------------------------------------------------------------
-    def _agg(self, cls: type[exp.Func], col: str, other: str | None = None) -> exp.Expr:
+    def _agg(self, cls: type[exp.Func], col: str | exp.Expr, other: str | None = None) -> exp.Expr:
+        this: exp.Expr = _col(col) if isinstance(col, str) else col
         second = _col(other) if other is not None else None
-        return aggregate(cls, _col(col), second, ordered=self.ordered)
+        return aggregate(cls, this, second, ordered=self.ordered)
 
     def moments(self) -> exp.Select:
         select = exp.select(
@@ -471,10 +503,11 @@ class _Builder:
                 continue  # only needed as a part of another metric
             cols = result_columns(metric)
             x = f"x_{metric.name}"
+            capped_x = capped(_col(x), metric)  # winsorised: x (a ratio's numerator) capped
             select = select.select(
                 exp.alias_(exp.Count(this=_col(x)), cols.n),
-                exp.alias_(self._agg(exp.Avg, x), cols.mean_x),
-                exp.alias_(self._agg(exp.Variance, x), cols.var_x),
+                exp.alias_(self._agg(exp.Avg, capped_x), cols.mean_x),
+                exp.alias_(self._agg(exp.Variance, capped_x.copy()), cols.var_x),
             )
             if cols.successes is not None:  # per-unit 0/1: an integer sum is exact
                 ones = exp.Sum(this=exp.cast(_col(x), BIGINT))
@@ -485,10 +518,14 @@ class _Builder:
                 select = select.select(
                     exp.alias_(self._agg(exp.Avg, y), cols.mean_y),
                     exp.alias_(self._agg(exp.Variance, y), cols.var_y),
-                    exp.alias_(self._agg(exp.CovarSamp, x, y), cols.cov_xy),
+                    exp.alias_(self._agg(exp.CovarSamp, capped_x.copy(), y), cols.cov_xy),
                 )
         keys = [_col("variant"), _col("is_bot"), _col("contaminated")]
-        return select.from_(UNIT_TABLE).group_by(*keys).order_by(*keys)
+        source = select.from_(UNIT_TABLE)
+        caps = cap_ctes(self.plan, UNIT_TABLE)
+        if caps:
+            source = source.join(exp.to_table(caps[-1][0]), join_type="cross")
+        return with_ctes(source.group_by(*keys).order_by(*keys), caps)
 
     def unit_rows(self) -> exp.Select:
         query = self.classified()
@@ -505,7 +542,11 @@ class _Builder:
         return query
 
     def build(self) -> CompiledRun:
-        results = (("moments", self.moments()), *check_results(self.plan, self.ordered))
+        results = (
+            ("moments", self.moments()),
+            *check_results(self.plan, self.ordered),
+            *extra_results(self.plan, UNIT_TABLE, ordered=self.ordered),
+        )
         return CompiledRun(unit_rows=self.unit_rows(), results=results)
 
 

@@ -15,6 +15,7 @@ from metricforge.checks.bots import event_shares
 from metricforge.checks.contamination import two_variant_counts
 from metricforge.checks.identity import identity_section
 from metricforge.errors import StatsError
+from metricforge.report.adjusted import adjusted_effect, extra_columns
 from metricforge.report.inference import TWO_SIDED, adjust, factorial_rows, hypothesis
 from metricforge.runner import RunData
 from metricforge.spec.model import MetricDef, Role
@@ -47,6 +48,8 @@ SCORECARD_SCHEMA = pa.schema(
         ("p_value_adjusted", pa.float64()),
         ("adjustment", pa.string()),
         ("contrast", pa.string()),
+        ("variance_reduction", pa.float64()),  # CUPED: 1 - adjusted / unadjusted variance
+        ("cap", pa.float64()),  # winsorising: the cap of the per-unit value
         ("unit_label", pa.string()),
         ("bot_filter", pa.string()),
         ("bot_filter_version", pa.int64()),
@@ -105,7 +108,9 @@ def _effect_fields(
     moments = data.moments[metric]
     control = data.plan.spec.control
     try:
-        effect: Effect = compare(
+        effect: Effect = adjusted_effect(
+            data, metric, variant, side=side, margin=margin
+        ) or compare(
             moments[variant], moments[control], alpha=data.plan.spec.alpha, side=side, margin=margin
         )
     except StatsError as err:
@@ -140,6 +145,8 @@ def _base_row(
         "p_value_adjusted": float("nan"),
         "adjustment": None,
         "contrast": None,
+        "variance_reduction": None,
+        "cap": None,
         "unit_label": metric.unit_label,
         **stamp,
     }
@@ -177,6 +184,7 @@ def build(data: RunData) -> Scorecard:
                 hypothesis=tested,
                 margin=margins.get(name),
                 **fields,
+                **extra_columns(data, name, variant),
             )
             rows.append(row)
         rows += factorial_rows(data, name, base)

@@ -37,6 +37,16 @@ def _role(row: dict[str, Any]) -> str:
     return f"guardrail (NI {100 * row['margin']:.4g}%)"
 
 
+def _method(row: dict[str, Any]) -> str:
+    """The method, with CUPED's variance reduction and a winsorising cap where they apply."""
+    notes = [row["method"]]
+    if row.get("variance_reduction") is not None:
+        notes.append(f"variance -{100 * row['variance_reduction']:.1f}%")
+    if row.get("cap") is not None:
+        notes.append(f"cap {_num(row['cap'])}")
+    return ", ".join(notes)
+
+
 def render(card: Scorecard, console: Console) -> None:
     trust = card.trust
     verdict = trust["verdict"].upper()
@@ -87,7 +97,7 @@ def render(card: Scorecard, console: Console) -> None:
             f"{_pct(r['rel_effect'])} ({_pct(r['rel_ci_low'])}, {_pct(r['rel_ci_high'])})",
             _num(r["p_value"], 3)
             + (f" ({_num(r['p_value_adjusted'], 3)})" if _finite(r["p_value_adjusted"]) else ""),
-            r["method"],
+            _method(r),
             style="bold" if significant else None,
         )
     console.print(table)

@@ -43,6 +43,7 @@ def load_spec(path: Path) -> ExperimentSpec:
             "end",
             "window_days",
             "pre_period_days",
+            "cuped",
             "alpha",
             "srm_alpha",
             "bot_filter",
@@ -92,6 +93,9 @@ def load_spec(path: Path) -> ExperimentSpec:
     pre_days = ex.integer("pre_period_days", 0)
     if not 0 <= pre_days <= 366:
         raise ex.error("pre_period_days must be between 0 and 366", "pre_period_days")
+    cuped = ex.flag("cuped")
+    if cuped and pre_days == 0:
+        raise ex.error("cuped needs a pre-period: set pre_period_days > 0", "cuped")
     alpha = ex.number("alpha", 0.05)
     srm_alpha = ex.number("srm_alpha", 0.001)
     for key, value in (("alpha", alpha), ("srm_alpha", srm_alpha)):
@@ -136,6 +140,7 @@ def load_spec(path: Path) -> ExperimentSpec:
         end=end,
         window_days=window,
         pre_period_days=pre_days,
+        cuped=cuped,
         alpha=alpha,
         srm_alpha=srm_alpha,
         stitch_to=stitch_to,

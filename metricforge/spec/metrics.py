@@ -21,7 +21,12 @@ _KEYS: dict[Kind, set[str]] = {
     Kind.RATIO: _COMMON | {"numerator", "denominator"},
     Kind.DWELL_SUCCESS: _COMMON | {"where", "threshold_s"},
     Kind.COMPOSITE: _COMMON | {"terms"},
+    Kind.QUANTILE: _COMMON | {"event", "where", "value", "q"},
 }
+# Kinds whose per-unit value (a ratio's numerator) may be capped with `winsorise`.
+WINSORISED_KINDS = (Kind.COUNT, Kind.SUM, Kind.MEAN, Kind.RATIO, Kind.COMPOSITE)
+for _kind in WINSORISED_KINDS:
+    _KEYS[_kind] = _KEYS[_kind] | {"winsorise"}
 
 
 def definition_files(paths: tuple[Path, ...]) -> list[Path]:
@@ -74,7 +79,7 @@ def _load_metric(toml: TomlFile, name: str) -> MetricDef:
     direction = sec.choice("direction", Direction, "direction", default="higher")
     origin = Origin(toml.name, toml.line_of("metric", name, "kind"))
     fields: dict[str, object] = {}
-    if kind in (Kind.COUNT, Kind.SUM, Kind.MEAN, Kind.PROPORTION):
+    if kind in (Kind.COUNT, Kind.SUM, Kind.MEAN, Kind.PROPORTION, Kind.QUANTILE):
         events = tuple(sec.str_list("event", []))
         for event in events:
             if event not in EVENT_TYPES:
@@ -92,7 +97,7 @@ def _load_metric(toml: TomlFile, name: str) -> MetricDef:
             key=f"metric.{name}.where",
             line=toml.line_of("metric", name, "where"),
         )
-    if kind in (Kind.SUM, Kind.MEAN):
+    if kind in (Kind.SUM, Kind.MEAN, Kind.QUANTILE):
         text = sec.req_str("value")
         tree = parse_expression(
             text,
@@ -113,6 +118,20 @@ def _load_metric(toml: TomlFile, name: str) -> MetricDef:
         if not 0 < threshold <= 86_400:
             raise sec.error("threshold_s must be in (0, 86400] seconds", "threshold_s")
         fields["threshold_s"] = threshold
+    if kind is Kind.QUANTILE:
+        q = sec.number("q")
+        if q is None:
+            raise sec.error("required key is missing: the quantile's level, e.g. q = 0.95", "q")
+        if not 0 < q < 1:
+            raise sec.error("q must lie strictly between 0 and 1", "q")
+        fields["q"] = q
+    if sec.has("winsorise"):
+        level = sec.number("winsorise")
+        if not 0.5 <= level < 1:
+            raise sec.error(
+                "winsorise is the quantile to cap at, between 0.5 and 1 (e.g. 0.999)", "winsorise"
+            )
+        fields["winsorise"] = level
     if kind is Kind.COMPOSITE:
         terms = sec.sub("terms")
         if not terms.table:

@@ -18,6 +18,7 @@ class Kind(StrEnum):
     RATIO = "ratio"
     DWELL_SUCCESS = "dwell_success"
     COMPOSITE = "composite"
+    QUANTILE = "quantile"  # a quantile of the event-level values, e.g. p95 page latency
 
 
 # Kinds whose per-unit value is a plain number (denominator 1 per unit), so they
@@ -65,6 +66,9 @@ class MetricDef:
     denominator: str | None = None
     terms: tuple[tuple[str, float], ...] = ()  # composite: (metric, weight)
     threshold_s: float = 30.0  # dwell_success
+    q: float = 0.5  # quantile: the level, e.g. 0.95
+    winsorise: float | None = None  # cap the per-unit value (a ratio's numerator) at this
+    # quantile of the pooled per-unit distribution of all analysed units
     direction: Direction = Direction.HIGHER
     unit_label: str = ""
     description: str = ""
@@ -155,6 +159,7 @@ class ExperimentSpec:
     stitch_to: str | None = None
     two_variant_units: TwoVariantPolicy = TwoVariantPolicy.EXCLUDE
     max_two_variant_share: float = 0.05  # trust check: share of exposed units in 2+ variants
+    cuped: bool = False  # adjust each metric by its own pre-period value (needs pre_period_days)
 
     @property
     def variant_names(self) -> tuple[str, ...]:

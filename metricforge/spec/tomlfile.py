@@ -130,6 +130,10 @@ class Section:
         value = self._get(key, (int, float), "a number", default)
         return float(value) if value is not None else None
 
+    def flag(self, key: str, default: bool = False) -> bool:
+        value: bool = self._get(key, bool, "true or false", default)
+        return value
+
     def integer(self, key: str, default: Any = None) -> Any:
         return self._get(key, int, "an integer", default)
 

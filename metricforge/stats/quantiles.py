@@ -1,0 +1,137 @@
+"""Quantile metrics: the difference of two variants' quantiles with an outer confidence
+interval that respects clustering by unit.
+
+Per variant the engine reports the quantile q̂ of the event-level values (linear
+interpolation), the per-unit counts S (values ≤ q̂) and M (all values) summarised as moments
+over units, and the quantiles at the levels q ∓ z·σ, where σ² is the delta-method variance
+of the proportion ΣS/ΣM: a ratio of per-unit sums, so units with many correlated values
+count as what they are. Those two quantiles bound the variant's quantile (the outer
+confidence interval); its standard error is the interval's width over 2z, and the
+difference of the two independent variants is tested with z.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from functools import lru_cache
+
+import numpy as np
+from scipy import stats as st
+
+from metricforge.errors import StatsError
+from metricforge.stats.effects import Effect
+from metricforge.stats.moments import Moments, ratio_point_and_variance
+from metricforge.stats.relative import relative_interval
+
+METHOD = "outer-ci"
+
+
+@lru_cache(maxsize=64)
+def two_sided_z(alpha: float) -> float:
+    """The standard normal quantile at 1 − α/2."""
+    if not 0.0 < alpha < 1.0:
+        raise StatsError(f"alpha must lie strictly between 0 and 1, is {alpha}")
+    return float(st.norm.ppf(1.0 - alpha / 2.0))
+
+
+@dataclass(frozen=True, slots=True)
+class QuantileSummary:
+    """One variant's quantile and its outer band, as the engine reports them."""
+
+    quantile: float  # q̂
+    n_values: int
+    below: Moments  # per unit: X = values ≤ q̂, Y = all values
+    level_low: float
+    level_high: float
+    value_low: float  # the quantile at level_low
+    value_high: float  # the quantile at level_high
+
+    @property
+    def n_units(self) -> int:
+        return self.below.n
+
+
+def rank_band(below: Moments, q: float, alpha: float) -> tuple[float, float]:
+    """The levels q ∓ z·σ, clipped to [0, 1], of the outer confidence interval."""
+    if not 0.0 < q < 1.0:
+        raise StatsError(f"the quantile's level must lie strictly between 0 and 1, is {q}")
+    _, variance = ratio_point_and_variance(below)
+    half = two_sided_z(alpha) * math.sqrt(variance)
+    return max(q - half, 0.0), min(q + half, 1.0)
+
+
+def quantile_se(summary: QuantileSummary, q: float, alpha: float) -> float:
+    """The standard error of q̂: the outer interval's width over 2z.
+
+    The band levels the engine used are recomputed here from the same moments; a
+    difference means the query and this module disagree, and nothing is reported.
+    """
+    low, high = rank_band(summary.below, q, alpha)
+    if not (
+        math.isclose(low, summary.level_low, abs_tol=1e-9)
+        and math.isclose(high, summary.level_high, abs_tol=1e-9)
+    ):
+        raise StatsError(
+            f"the engine's rank band ({summary.level_low}, {summary.level_high}) differs from"
+            f" the delta method's ({low}, {high})"
+        )
+    if not (math.isfinite(summary.value_low) and math.isfinite(summary.value_high)):
+        raise StatsError("the quantiles at the band's levels are missing")
+    return (summary.value_high - summary.value_low) / (2.0 * two_sided_z(alpha))
+
+
+def quantile_compare(
+    treatment: QuantileSummary,
+    control: QuantileSummary,
+    *,
+    q: float,
+    alpha: float = 0.05,
+    side: int = 0,
+    margin: float | None = None,
+) -> Effect:
+    """Treatment minus control quantile, its CI (two-sided, 1 − alpha) and p-value by z
+    (independent arms); the relative effect by the delta method.
+
+    ``side`` 0 tests "no difference" two-sided; ±1 is one-sided against that bad direction
+    (+1: higher is worse): a harm test, or with a relative ``margin`` m the
+    non-inferiority test of H0 "worse by m·|control| or more".
+    """
+    if side not in (-1, 0, 1) or (margin is not None and (side == 0 or not margin > 0)):
+        raise StatsError("a margin needs a one-sided test (side ±1) and must be positive")
+    se_t = quantile_se(treatment, q, alpha)
+    se_c = quantile_se(control, q, alpha)
+    z = two_sided_z(alpha)
+    t, c = treatment.quantile, control.quantile
+    diff = t - c
+    half = z * math.hypot(se_t, se_c)
+    # the tested contrast is t − k·c: k = 1, or 1 ± margin for non-inferiority
+    k = 1.0 if margin is None else 1.0 + side * margin * (-1.0 if c < 0 else 1.0)
+    contrast = t - k * c
+    se = math.hypot(se_t, k * se_c)
+    sign = float(side) if margin is None else -float(side)
+    if se == 0:  # no spread in either variant: the contrast is known exactly
+        known = contrast == 0 if side == 0 else sign * contrast <= 0
+        p = 1.0 if known else 0.0
+    elif side == 0:
+        p = 2.0 * float(st.norm.sf(abs(contrast) / se))
+    else:
+        p = float(st.norm.sf(sign * contrast / se))
+    rel, rel_low, rel_high, fieller = (
+        float(a[0])
+        for a in relative_interval(
+            np.array([t]), np.array([se_t * se_t]), np.array([c]), np.array([se_c * se_c]), z
+        )
+    )
+    return Effect(
+        value=t,
+        control_value=c,
+        abs_effect=diff,
+        abs_ci_low=diff - half,
+        abs_ci_high=diff + half,
+        rel_effect=rel,
+        rel_ci_low=rel_low,
+        rel_ci_high=rel_high,
+        p_value=p,
+        method=METHOD + ("+fieller" if fieller else ""),
+    )
