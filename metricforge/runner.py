@@ -5,6 +5,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import pyarrow as pa
 
@@ -14,6 +15,7 @@ from metricforge.engines.base import Engine, EngineInputs
 from metricforge.errors import InputDataError
 from metricforge.inputs import InputFile, check_columns, fingerprint, inspect, parquet_files
 from metricforge.provenance import Stamp, make_stamp
+from metricforge.quality import summarise
 from metricforge.schema import EVENT_COLUMNS, EXPOSURE_COLUMNS
 from metricforge.spec.model import MetricDef, Plan, RuleKind
 from metricforge.stats import Moments
@@ -43,6 +45,7 @@ class RunData:
     inputs: list[InputFile]
     counts: dict[str, VariantCounts]
     moments: dict[str, dict[str, Moments]] = field(default_factory=dict)  # metric -> variant
+    quality: dict[str, Any] = field(default_factory=dict)  # the data_quality section
 
 
 def needed_event_columns(plan: Plan) -> tuple[str, ...]:
@@ -80,7 +83,9 @@ def execute(plan: Plan, engine: Engine) -> RunData:
     engine_inputs, files = gather_inputs(plan)
     stamp = make_stamp(plan, fingerprint(files), engine.name, engine.version())
     tables = engine.run(compile_plan(plan, engine.dialect), engine_inputs)
-    return reshape(plan, stamp, files, tables["moments"])
+    data = reshape(plan, stamp, files, tables["moments"])
+    data.quality = summarise(plan, engine_inputs, files, tables.get("data_quality"))
+    return data
 
 
 def reshape(plan: Plan, stamp: Stamp, files: list[InputFile], table: pa.Table) -> RunData:

@@ -13,6 +13,8 @@ stages (CTEs):
 
 Result queries read only ``unit_rows`` and return a few rows each:
   moments         per-variant sufficient statistics with centred aggregates
+  data_quality    per-variant counts of what the scan left out or found odd
+                  (compile/quality.py)
 
 The unit query reads two views, ``events`` and ``exposures``, that the engine registers.
 """
@@ -25,6 +27,13 @@ from dataclasses import dataclass
 import sqlglot.expressions as exp
 
 from metricforge.compile.expressions import qualify
+from metricforge.compile.quality import (
+    DUPLICATE_EXPOSURES,
+    data_quality_query,
+    unit_columns,
+    usable,
+    value_checks,
+)
 from metricforge.spec.model import BotRule, Kind, MetricDef, Plan, RuleKind
 
 UNIT_TABLE = "unit_rows"
@@ -100,6 +109,29 @@ class _Builder:
     # -- stage 1 -------------------------------------------------------------------------
     def first_exposure(self) -> exp.Select:
         x = "x"
+        # Exposure rows inside the experiment, exact repeats folded (and counted).
+        rows = (
+            exp.select(
+                _col("unit_id"),
+                _col("variant"),
+                _col("ts"),
+                exp.alias_(exp.Count(this=exp.Star()), "n_rows"),
+            )
+            .from_("exposures")
+            .where(
+                _and(
+                    _col("experiment").eq(_lit(self.spec.name)),
+                    _col("unit_id").is_(exp.null()).not_(),
+                    _col("variant").is_(exp.null()).not_(),
+                    _col("ts") >= _ts(self.spec.start),
+                    _col("ts") < _ts(self.spec.end),
+                )
+            )
+            .group_by(_col("unit_id"), _col("variant"), _col("ts"))
+        )
+        repeats = exp.Sub(
+            this=exp.Sum(this=_col("n_rows", x)), expression=exp.Count(this=exp.Star())
+        )
         return (
             exp.select(
                 exp.alias_(_col("unit_id", x), "unit"),
@@ -108,17 +140,9 @@ class _Builder:
                 exp.alias_(
                     exp.Count(this=exp.Distinct(expressions=[_col("variant", x)])), "n_variants"
                 ),
+                exp.alias_(exp.cast(repeats, BIGINT), DUPLICATE_EXPOSURES),
             )
-            .from_(exp.alias_(exp.to_table("exposures"), x, table=True))
-            .where(
-                _and(
-                    _col("experiment", x).eq(_lit(self.spec.name)),
-                    _col("unit_id", x).is_(exp.null()).not_(),
-                    _col("variant", x).is_(exp.null()).not_(),
-                    _col("ts", x) >= _ts(self.spec.start),
-                    _col("ts", x) < _ts(self.spec.end),
-                )
-            )
+            .from_(exp.alias_(exp.Subquery(this=rows), x, table=True))
             .group_by(_col("unit_id", x))
         )
 
@@ -151,6 +175,7 @@ class _Builder:
             _col("unit", f),
             _col("variant", f),
             _col("n_variants", f),
+            _col(DUPLICATE_EXPOSURES, f),
             exp.alias_(_col("session_id", e), "session"),
             exp.alias_(n_events, "n_events"),
         )
@@ -175,7 +200,11 @@ class _Builder:
             select.from_(exp.alias_(exp.to_table("first_exposure"), f, table=True))
             .join(exp.alias_(exp.to_table("events"), e, table=True), on=join_on, join_type="left")
             .group_by(
-                _col("unit", f), _col("variant", f), _col("n_variants", f), _col("session_id", e)
+                _col("unit", f),
+                _col("variant", f),
+                _col("n_variants", f),
+                _col(DUPLICATE_EXPOSURES, f),
+                _col("session_id", e),
             )
         )
 
@@ -200,13 +229,21 @@ class _Builder:
             return [exp.alias_(exp.Count(this=_case(cond, _lit(1))), s)]
         if metric.kind in (Kind.SUM, Kind.MEAN):
             assert metric.value is not None
-            value = exp.cast(qualify(metric.value, e), EXACT)
-            parts: list[exp.Expr] = [exp.alias_(exp.Sum(this=_case(cond, value)), s)]
+            raw = qualify(metric.value, e)
+            used = _and(cond, usable(raw))  # NaN, infinite and huge values are left out
+            value = exp.cast(raw.copy(), EXACT)
+            parts: list[exp.Expr] = [exp.alias_(exp.Sum(this=_case(used, value)), s)]
             if metric.kind is Kind.MEAN:
-                has = _and(cond, qualify(metric.value, e).is_(exp.null()).not_())
                 parts.append(
-                    exp.alias_(exp.Count(this=_case(has, _lit(1))), f"c{period}_{metric.name}")
+                    exp.alias_(
+                        exp.Count(this=_case(used.copy(), _lit(1))), f"c{period}_{metric.name}"
+                    )
                 )
+            if not period:
+                parts += [
+                    exp.alias_(exp.Count(this=_case(check, _lit(1))), name)
+                    for name, check in value_checks(cond, raw, metric)
+                ]
             return parts
         if metric.kind is Kind.DWELL_SUCCESS:
             return [exp.alias_(self._dwell_success(metric, e, period_cond), s)]
@@ -261,6 +298,7 @@ class _Builder:
             _col("unit"),
             _col("variant"),
             _col("n_variants"),
+            _col(DUPLICATE_EXPOSURES),
             exp.alias_(exp.cast(exp.Sum(this=_col("n_events")), BIGINT), "n_events"),
             exp.alias_(exp.Max(this=_col("n_events")), "max_session_events"),
             exp.alias_(exp.Count(this=_col("session")), "n_sessions"),
@@ -275,11 +313,15 @@ class _Builder:
                 select = select.select(
                     exp.alias_(exp.Max(this=_col(f"bot_rule_{i}")), f"bot_rule_{i}")
                 )
+        for column in unit_columns(self.plan):
+            select = select.select(exp.alias_(exp.cast(exp.Sum(this=_col(column)), BIGINT), column))
         for metric in self.plan.metrics:
             select = select.select(*self._unit_parts(metric, "", "n_events" if pre else None))
             if pre:
                 select = select.select(*self._unit_parts(metric, "pre", "n_pre_events"))
-        return select.from_("sessions").group_by(_col("unit"), _col("variant"), _col("n_variants"))
+        return select.from_("sessions").group_by(
+            _col("unit"), _col("variant"), _col("n_variants"), _col(DUPLICATE_EXPOSURES)
+        )
 
     def _unit_parts(self, metric: MetricDef, period: str, active: str | None) -> list[exp.Expr]:
         """A metric's per-unit columns for one period; ``active`` names the session column
@@ -356,6 +398,8 @@ class _Builder:
             _col("n_events"),
             exp.alias_(is_bot, "is_bot"),
             exp.alias_(_col("n_variants") > _lit(1), "contaminated"),
+            _col(DUPLICATE_EXPOSURES),
+            *[_col(column) for column in unit_columns(self.plan)],
         )
         periods = ("", "pre") if self.plan.pre_period_days else ("",)
         if self.plan.pre_period_days:
@@ -422,7 +466,13 @@ class _Builder:
         return query
 
     def build(self) -> CompiledRun:
-        return CompiledRun(unit_rows=self.unit_rows(), results=(("moments", self.moments()),))
+        return CompiledRun(
+            unit_rows=self.unit_rows(),
+            results=(
+                ("moments", self.moments()),
+                ("data_quality", data_quality_query(self.plan, UNIT_TABLE)),
+            ),
+        )
 
 
 @dataclass(frozen=True)

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import contextlib
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import pyarrow as pa
@@ -66,6 +66,7 @@ class Scorecard:
     trust: dict[str, Any]
     variants: list[dict[str, Any]]
     stamp: dict[str, Any]
+    quality: dict[str, Any] = field(default_factory=dict)
 
     def table(self) -> pa.Table:
         return pa.Table.from_pylist(self.rows, schema=SCORECARD_SCHEMA)
@@ -76,6 +77,7 @@ class Scorecard:
             "experiment": self.stamp["experiment"],
             "stamp": self.stamp,
             "variants": self.variants,
+            "data_quality": self.quality,
             "metrics": [_clean(r) for r in self.rows],
         }
 
@@ -139,7 +141,11 @@ def build(data: RunData) -> Scorecard:
                 }
             )
     return Scorecard(
-        rows=rows, trust=trust_section(data), variants=variant_section(data), stamp=stamp
+        rows=rows,
+        trust=trust_section(data),
+        variants=variant_section(data),
+        stamp=stamp,
+        quality=data.quality,
     )
 
 

@@ -7,7 +7,7 @@ from pathlib import Path
 
 from metricforge.compile.expressions import parse_expression
 from metricforge.errors import SpecError, closest
-from metricforge.schema import EVENT_COLUMNS, EVENT_TYPES, NUMERIC_TYPES
+from metricforge.schema import EVENT_COLUMNS, EVENT_TYPES
 from metricforge.spec.model import PER_UNIT_KINDS, Direction, Kind, MetricDef, Origin
 from metricforge.spec.tomlfile import Section, TomlFile, read_toml
 
@@ -91,6 +91,7 @@ def _load_metric(toml: TomlFile, name: str) -> MetricDef:
             file=toml.name,
             key=f"metric.{name}.where",
             line=toml.line_of("metric", name, "where"),
+            expect="boolean",
         )
     if kind in (Kind.SUM, Kind.MEAN):
         text = sec.req_str("value")
@@ -100,9 +101,8 @@ def _load_metric(toml: TomlFile, name: str) -> MetricDef:
             file=toml.name,
             key=f"metric.{name}.value",
             line=toml.line_of("metric", name, "value"),
+            expect="number",
         )
-        if tree.key == "column" and EVENT_COLUMNS[tree.name] not in NUMERIC_TYPES:
-            raise sec.error(f"column '{tree.name}' is not numeric", "value")
         fields["value_text"] = text
         fields["value"] = tree
     if kind is Kind.RATIO:

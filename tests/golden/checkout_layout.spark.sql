@@ -5,14 +5,26 @@ WITH first_exposure AS (
     x.unit_id AS unit,
     MIN(x.ts) AS first_ts,
     MIN(x.variant) AS variant,
-    COUNT(DISTINCT x.variant) AS n_variants
-  FROM exposures AS x
-  WHERE
-    x.experiment = 'checkout_layout'
-    AND NOT x.unit_id IS NULL
-    AND NOT x.variant IS NULL
-    AND x.ts >= CAST('2026-09-15 00:00:00' AS TIMESTAMP)
-    AND x.ts < CAST('2026-09-29 00:00:00' AS TIMESTAMP)
+    COUNT(DISTINCT x.variant) AS n_variants,
+    CAST(SUM(x.n_rows) - COUNT(*) AS BIGINT) AS dq_duplicate_exposures
+  FROM (
+    SELECT
+      unit_id,
+      variant,
+      ts,
+      COUNT(*) AS n_rows
+    FROM exposures
+    WHERE
+      experiment = 'checkout_layout'
+      AND NOT unit_id IS NULL
+      AND NOT variant IS NULL
+      AND ts >= CAST('2026-09-15 00:00:00' AS TIMESTAMP)
+      AND ts < CAST('2026-09-29 00:00:00' AS TIMESTAMP)
+    GROUP BY
+      unit_id,
+      variant,
+      ts
+  ) AS x
   GROUP BY
     x.unit_id
 ), sessions AS (
@@ -20,6 +32,7 @@ WITH first_exposure AS (
     f.unit,
     f.variant,
     f.n_variants,
+    f.dq_duplicate_exposures,
     e.session_id AS session,
     COUNT(e.ts) AS n_events,
     MAX(
@@ -32,12 +45,79 @@ WITH first_exposure AS (
         ELSE 0
       END
     ) AS bot_rule_0,
-    SUM(CASE WHEN e.event IN ('purchase') THEN CAST(e.value AS DECIMAL(38, 10)) END) AS s_revenue,
+    SUM(
+      CASE
+        WHEN e.event IN ('purchase') AND (
+          ABS(CAST(e.value AS DOUBLE)) < 1e+18
+        )
+        THEN CAST(e.value AS DECIMAL(38, 10))
+      END
+    ) AS s_revenue,
+    COUNT(
+      CASE
+        WHEN e.event IN ('purchase')
+        AND NOT (
+          e.value
+        ) IS NULL
+        AND NOT (
+          ABS(CAST(e.value AS DOUBLE)) < 1e+18
+        )
+        THEN 1
+      END
+    ) AS dq_ignored_revenue,
+    COUNT(
+      CASE
+        WHEN e.event IN ('purchase')
+        AND (
+          ABS(CAST(e.value AS DOUBLE)) < 1e+18
+        )
+        AND (
+          e.value
+        ) < 0
+        THEN 1
+      END
+    ) AS dq_negative_revenue,
     COUNT(CASE WHEN e.event IN ('unsubscribe') THEN 1 END) AS s_unsubscribes,
     SUM(
-      CASE WHEN e.event IN ('page_load') THEN CAST(e.latency_ms AS DECIMAL(38, 10)) END
+      CASE
+        WHEN e.event IN ('page_load') AND (
+          ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
+        )
+        THEN CAST(e.latency_ms AS DECIMAL(38, 10))
+      END
     ) AS s_page_latency,
-    COUNT(CASE WHEN e.event IN ('page_load') AND NOT e.latency_ms IS NULL THEN 1 END) AS c_page_latency,
+    COUNT(
+      CASE
+        WHEN e.event IN ('page_load') AND (
+          ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
+        )
+        THEN 1
+      END
+    ) AS c_page_latency,
+    COUNT(
+      CASE
+        WHEN e.event IN ('page_load')
+        AND NOT (
+          e.latency_ms
+        ) IS NULL
+        AND NOT (
+          ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
+        )
+        THEN 1
+      END
+    ) AS dq_ignored_page_latency,
+    COUNT(
+      CASE
+        WHEN e.event IN ('page_load')
+        AND (
+          ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
+        )
+        AND (
+          e.latency_ms
+        ) < 0
+        THEN 1
+      END
+    ) AS dq_negative_page_latency,
     COUNT(CASE WHEN e.event IN ('purchase') THEN 1 END) AS s_purchases,
     COUNT(CASE WHEN e.event IN ('refund') THEN 1 END) AS s_refunds,
     COUNT(CASE WHEN e.event IN ('purchase') THEN 1 END) AS s_buyer_share,
@@ -82,16 +162,22 @@ WITH first_exposure AS (
     f.unit,
     f.variant,
     f.n_variants,
+    f.dq_duplicate_exposures,
     e.session_id
 ), units AS (
   SELECT
     unit,
     variant,
     n_variants,
+    dq_duplicate_exposures,
     CAST(SUM(n_events) AS BIGINT) AS n_events,
     MAX(n_events) AS max_session_events,
     COUNT(session) AS n_sessions,
     MAX(bot_rule_0) AS bot_rule_0,
+    CAST(SUM(dq_ignored_revenue) AS BIGINT) AS dq_ignored_revenue,
+    CAST(SUM(dq_negative_revenue) AS BIGINT) AS dq_negative_revenue,
+    CAST(SUM(dq_ignored_page_latency) AS BIGINT) AS dq_ignored_page_latency,
+    CAST(SUM(dq_negative_page_latency) AS BIGINT) AS dq_negative_page_latency,
     CAST(COALESCE(SUM(s_revenue), 0) AS DOUBLE) AS u_revenue,
     CAST(COALESCE(SUM(s_unsubscribes), 0) AS BIGINT) AS u_unsubscribes,
     CASE
@@ -110,7 +196,8 @@ WITH first_exposure AS (
   GROUP BY
     unit,
     variant,
-    n_variants
+    n_variants,
+    dq_duplicate_exposures
 )
 SELECT
   unit,
@@ -120,6 +207,11 @@ SELECT
     bot_rule_0 = 1 OR max_session_events > 60
   ) AS is_bot,
   n_variants > 1 AS contaminated,
+  dq_duplicate_exposures,
+  dq_ignored_revenue,
+  dq_negative_revenue,
+  dq_ignored_page_latency,
+  dq_negative_page_latency,
   CAST(u_revenue AS DOUBLE) AS x_revenue,
   CAST(u_unsubscribes AS DOUBLE) AS x_unsubscribes,
   CAST(u_page_latency AS DOUBLE) AS x_page_latency,
@@ -190,3 +282,19 @@ ORDER BY
   variant,
   is_bot,
   contaminated;
+
+-- data_quality
+SELECT
+  variant,
+  COUNT(*) AS units,
+  CAST(SUM(CASE WHEN n_events = 0 THEN 1 ELSE 0 END) AS BIGINT) AS units_without_events,
+  CAST(SUM(dq_duplicate_exposures) AS BIGINT) AS dq_duplicate_exposures,
+  CAST(SUM(dq_ignored_revenue) AS BIGINT) AS dq_ignored_revenue,
+  CAST(SUM(dq_negative_revenue) AS BIGINT) AS dq_negative_revenue,
+  CAST(SUM(dq_ignored_page_latency) AS BIGINT) AS dq_ignored_page_latency,
+  CAST(SUM(dq_negative_page_latency) AS BIGINT) AS dq_negative_page_latency
+FROM unit_rows
+GROUP BY
+  variant
+ORDER BY
+  variant;
