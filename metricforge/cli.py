@@ -61,10 +61,13 @@ def run(
     strict: Annotated[
         bool, typer.Option("--strict", help=f"Exit with {STRICT_EXIT} when a trust check fails.")
     ] = False,
+    timeout: Annotated[
+        float, typer.Option("--timeout", min=0.001, help="Stop the queries after SECONDS.")
+    ] = 3600.0,
 ) -> None:
     """Compute the scorecard of one experiment and write it to OUT, all or nothing."""
     from metricforge.engines.duckdb import DuckDBEngine
-    from metricforge.report.files import write_outputs
+    from metricforge.report.files import prepare_output, write_outputs
     from metricforge.report.scorecard import build
     from metricforge.report.terminal import render
     from metricforge.runner import execute
@@ -72,7 +75,8 @@ def run(
 
     def action() -> bool:
         plan = load_plan(pipeline, bot_filter=bot_filter)
-        data = execute(plan, DuckDBEngine(threads=threads))
+        prepare_output(out, plan)
+        data = execute(plan, DuckDBEngine(threads=threads, timeout_s=timeout))
         card = build(data)
         write_outputs(out, data, card)
         render(card, out_console)

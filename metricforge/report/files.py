@@ -1,23 +1,24 @@
-"""Writing results all or nothing: a temporary folder beside the target, then a rename."""
+"""Writing results all or nothing: the files' bytes, then one publish (report/publish.py)."""
 
 from __future__ import annotations
 
 import datetime as dt
 import json
 import math
-import os
-import shutil
 from pathlib import Path
 from typing import Any
 
+import pyarrow as pa
 import pyarrow.parquet as pq
 
 from metricforge.errors import OutputError
 from metricforge.inputs import describe
 from metricforge.provenance import library_versions
+from metricforge.report.publish import check_target, protected_paths, publish, recover
 from metricforge.report.scorecard import Scorecard
 from metricforge.runner import RunData
 from metricforge.spec.metrics import definition_files
+from metricforge.spec.model import Plan
 
 
 def _json_default(value: object) -> object:
@@ -56,35 +57,29 @@ def manifest(data: RunData, card: Scorecard) -> dict[str, Any]:
     }
 
 
-def _write(path: Path, payload: bytes) -> None:
-    with path.open("wb") as fh:
-        fh.write(payload)
-        fh.flush()
-        os.fsync(fh.fileno())
+def _parquet_bytes(table: pa.Table) -> bytes:
+    sink = pa.BufferOutputStream()
+    pq.write_table(table, sink, compression="zstd")
+    payload: bytes = sink.getvalue().to_pybytes()
+    return payload
+
+
+def prepare_output(out: Path, plan: Plan) -> Path:
+    """Check ``out`` against the output rules before any work; tidy killed runs' leftovers."""
+    target = check_target(out, *protected_paths(plan))
+    try:
+        recover(target)
+    except OSError as err:
+        raise OutputError(f"cannot tidy the output folder: {err.strerror}", file=str(out)) from None
+    return target
 
 
 def write_outputs(out: Path, data: RunData, card: Scorecard) -> None:
     """Write scorecard.parquet, scorecard.json and manifest.json into ``out`` atomically."""
-    out = out.absolute()
-    parent = out.parent
-    try:
-        parent.mkdir(parents=True, exist_ok=True)
-        if out.exists() and not out.is_dir():
-            raise OutputError("output path exists and is not a folder", file=str(out))
-        tmp = parent / f".{out.name}.partial-{os.getpid()}"
-        if tmp.exists():
-            shutil.rmtree(tmp)
-        tmp.mkdir()
-        pq.write_table(card.table(), tmp / "scorecard.parquet", compression="zstd")
-        with (tmp / "scorecard.parquet").open("rb+") as fh:
-            os.fsync(fh.fileno())
-        _write(tmp / "scorecard.json", dump_json(card.as_json()))
-        _write(tmp / "manifest.json", dump_json(manifest(data, card)))
-        old = parent / f".{out.name}.old-{os.getpid()}"
-        if out.exists():
-            out.rename(old)
-        tmp.rename(out)
-        if old.exists():
-            shutil.rmtree(old)
-    except OSError as err:
-        raise OutputError(f"cannot write results: {err.strerror}", file=str(out)) from None
+    target = check_target(out, *protected_paths(data.plan))
+    files = {
+        "scorecard.parquet": _parquet_bytes(card.table()),
+        "scorecard.json": dump_json(card.as_json()),
+        "manifest.json": dump_json(manifest(data, card)),
+    }
+    publish(target, files)
