@@ -188,7 +188,7 @@ def _check_args(node: exp.Expr, allowed: frozenset[str], fail: Fail) -> None:
             raise fail(f"'{node.sql(dialect='duckdb')[:60]}' is incomplete")
     for arg, value in node.args.items():
         if arg not in allowed and value not in (None, False, []):
-            raise fail(f"'{node.sql(dialect='duckdb')[:60]}' uses '{arg}', which is not allowed")
+            raise fail(f"{_name_of(node).upper()} with '{arg}' is not allowed")
 
 
 def _check_node(node: exp.Expr, columns: Mapping[str, str], fail: Fail) -> None:
