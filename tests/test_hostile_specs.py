@@ -344,7 +344,8 @@ def test_unicode_and_quoted_variant_names_work(
     env = setup_env(tmp_path, monkeypatch, variants=arms)
     env.edit_spec(
         'control = "control"\nvariants = { control = 50, treatment = 50 }',
-        f"control = {toml_str(arms[0])}\nvariants = {{ {toml_str(arms[0])} = 50, {toml_str(arms[1])} = 50 }}",
+        f"control = {toml_str(arms[0])}\n"
+        f"variants = {{ {toml_str(arms[0])} = 50, {toml_str(arms[1])} = 50 }}",
     )
     card = assert_harmless(env, env.run(), snapshot(env.root))
     assert [v["variant"] for v in card["variants"]] == list(arms)

@@ -2,9 +2,11 @@
 
 The connection is hardened in this order, then its configuration is locked:
 extension auto-install and auto-load off, community extensions and persistent secrets
-off, a memory limit and a private temporary directory, reading limited to the input
-folders (``allowed_directories``) with external access off, time zone UTC. Only the
-statements that ``engines/guard.py`` checked run on it, under a timeout watchdog.
+off, a memory limit and a private temporary directory, external access off with exactly
+the input files readable (``allowed_paths``; ``allowed_directories`` holds only the private
+temporary folder: DuckDB lets both lists be written as well as read, so no input folder is
+on them), time zone UTC. Only the statements that ``engines/guard.py`` checked run on it,
+under a timeout watchdog.
 """
 
 from __future__ import annotations
@@ -33,13 +35,13 @@ def _set(name: str, value: exp.Expr) -> str:
 
 
 def hardened_connection(
-    folders: list[Path],
+    files: list[Path],
     temp_dir: Path,
     *,
     memory_limit: str = DEFAULT_MEMORY_LIMIT,
     threads: int | None = None,
 ) -> duckdb.DuckDBPyConnection:
-    """A connection that can read only below ``folders`` and whose settings are locked."""
+    """A connection that can read only ``files`` and whose settings are locked."""
     config: dict[str, str | bool | int | float | list[str]] = {
         "autoinstall_known_extensions": False,
         "autoload_known_extensions": False,
@@ -51,10 +53,12 @@ def hardened_connection(
     if threads:
         config["threads"] = threads
     con = duckdb.connect(":memory:", config=config)
-    allowed = sorted({str(f.resolve()) + "/" for f in folders} | {str(temp_dir.resolve()) + "/"})
+    paths = sorted({str(p) for f in files for p in (f.absolute(), f.resolve())})
+    spill = str(temp_dir.resolve()) + "/"
     for name, value in (
         ("TimeZone", exp.Literal.string("UTC")),
-        ("allowed_directories", exp.Array(expressions=[exp.Literal.string(f) for f in allowed])),
+        ("allowed_paths", exp.Array(expressions=[exp.Literal.string(p) for p in paths])),
+        ("allowed_directories", exp.Array(expressions=[exp.Literal.string(spill)])),
         ("enable_external_access", exp.false()),
         ("lock_configuration", exp.true()),  # last: nothing can be changed after this
     ):
@@ -71,10 +75,12 @@ def _register_views(con: duckdb.DuckDBPyConnection, inputs: EngineInputs) -> Non
         return duckdb.ColumnExpression(name)
 
     events = con.read_parquet(
-        [str(p) for p in inputs.events], hive_partitioning=inputs.hive, union_by_name=True
+        [str(p.absolute()) for p in inputs.events],
+        hive_partitioning=inputs.hive,
+        union_by_name=True,
     )
     events.select(*[column(c) for c in inputs.event_columns]).create_view("events")
-    exposures = con.read_parquet([str(p) for p in inputs.exposures], union_by_name=True)
+    exposures = con.read_parquet([str(p.absolute()) for p in inputs.exposures], union_by_name=True)
     exposures.select(*[column(c) for c in ("unit_id", "experiment", "variant", "ts")]).create_view(
         "exposures"
     )
@@ -113,11 +119,13 @@ class DuckDBEngine:
         statements = checked_statements(compiled, self.dialect)
         _check_with_duckdb(statements)
         (_, store), results = statements[0], statements[1:]
-        folders = [p.parent for p in inputs.events + inputs.exposures]
         with tempfile.TemporaryDirectory(prefix="metricforge-spill-", dir=self.temp_dir) as tmp:
             try:
                 con = hardened_connection(
-                    folders, Path(tmp), memory_limit=self.memory_limit, threads=self.threads
+                    inputs.events + inputs.exposures,
+                    Path(tmp),
+                    memory_limit=self.memory_limit,
+                    threads=self.threads,
                 )
             except duckdb.Error as err:
                 raise EngineError(f"DuckDB failed to start: {_first_line(err)}") from None
