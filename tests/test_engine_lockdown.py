@@ -151,6 +151,7 @@ def test_settings_hold_the_hardened_values(
         "memory_limit",
         "allowed_directories",
         "threads",
+        "disabled_optimizers",
     ]
     got = dict(
         zip(
@@ -172,6 +173,7 @@ def test_settings_hold_the_hardened_values(
     assert got["memory_limit"] in ("488.2 MiB", "512.0 MB", "512MB")
     assert got["allowed_directories"] == [str((tmp_path / "spill").resolve()) + "/"]
     assert got["threads"] == 1
+    assert got["disabled_optimizers"] == "statistics_propagation"  # NaN-blind statistics
 
 
 # -- only checked statements run -----------------------------------------------------------

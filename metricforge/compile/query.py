@@ -231,7 +231,8 @@ class _Builder:
             assert metric.value is not None
             raw = qualify(metric.value, e)
             used = _and(cond, usable(raw))  # NaN, infinite and huge values are left out
-            value = exp.cast(raw.copy(), EXACT)
+            # TRY_CAST: an engine may hoist the cast out of the CASE and apply it to every row
+            value = exp.TryCast(this=raw.copy(), to=EXACT.copy())
             parts: list[exp.Expr] = [exp.alias_(exp.Sum(this=_case(used, value)), s)]
             if metric.kind is Kind.MEAN:
                 parts.append(

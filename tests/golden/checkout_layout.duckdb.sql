@@ -50,7 +50,7 @@ WITH first_exposure AS (
         WHEN e.event IN ('purchase') AND (
           ABS(CAST(e.value AS DOUBLE)) < 1e+18
         )
-        THEN CAST(e.value AS DECIMAL(38, 10))
+        THEN TRY_CAST(e.value AS DECIMAL(38, 10))
       END
     ) AS s_revenue,
     COUNT(
@@ -83,7 +83,7 @@ WITH first_exposure AS (
         WHEN e.event IN ('page_load') AND (
           ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
         )
-        THEN CAST(e.latency_ms AS DECIMAL(38, 10))
+        THEN TRY_CAST(e.latency_ms AS DECIMAL(38, 10))
       END
     ) AS s_page_latency,
     COUNT(
