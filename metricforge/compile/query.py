@@ -93,7 +93,9 @@ def _and(*parts: exp.Expr | None) -> exp.Expr:
 
 
 def _event_condition(metric: MetricDef, events: str) -> exp.Expr:
-    kinds: exp.Expr | None = None
+    # A unit without events joins one all-NULL event row (LEFT JOIN); a condition that
+    # could hold on it (no event types; `where = "device IS NULL"`) must not count it.
+    kinds: exp.Expr = _col("ts", events).is_(exp.null()).not_()
     if metric.events:
         kinds = _col("event", events).isin(*[_lit(e) for e in metric.events])
     where = exp.paren(qualify(metric.where, events)) if metric.where is not None else None

@@ -110,8 +110,8 @@ def _parse_rule(sec: Section) -> BotRule:
     if kind is RuleKind.SESSION_EVENTS:
         sec.check_keys({"kind", "max", "description"})
         limit = sec.integer("max")
-        if limit is None or limit < 1:
-            raise sec.error("max must be a positive integer", "max")
+        if limit is None or not 1 <= limit <= 1_000_000_000:
+            raise sec.error("max must be a whole number from 1 to 1000000000", "max")
         return BotRule(kind=kind, max_events=limit)
     sec.check_keys({"kind", "tokens", "description"})
     tokens = sec.str_list("tokens")

@@ -139,7 +139,12 @@ class Section:
 
     def number(self, key: str, default: Any = None) -> Any:
         value = self._get(key, (int, float), "a number", default)
-        return float(value) if value is not None else None
+        if value is None:
+            return None
+        try:
+            return float(value)
+        except OverflowError:
+            raise self.error("number out of range", key) from None
 
     def integer(self, key: str, default: Any = None) -> Any:
         return self._get(key, int, "an integer", default)
