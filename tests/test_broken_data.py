@@ -12,6 +12,7 @@ from __future__ import annotations
 import datetime as dt
 import json
 import math
+import shutil
 import time
 from collections.abc import Callable
 from pathlib import Path
@@ -24,7 +25,7 @@ from typer.testing import CliRunner
 
 from metricforge.cli import app
 from metricforge.sample import EVENT_SCHEMA, EXPOSURE_SCHEMA
-from tests.conftest import T0, event, exposure, write_case
+from tests.conftest import ROOT, T0, event, exposure, write_case
 from tests.hostile_env import snapshot
 
 Rows = list[dict[str, Any]]
@@ -506,3 +507,31 @@ def test_zero_rows_after_the_bot_filter_in_one_variant(tmp_path: Path) -> None:
     assert code == 2
     assert "variant 'treatment' has no analysable units" in message
     assert snapshot(tmp_path) == before
+
+
+def test_units_without_events_count_zero_whatever_the_filter(tmp_path: Path) -> None:
+    """A unit with no event in its window joins one all-NULL row; no metric may count it."""
+    defs = tmp_path / "defs"
+    shutil.copytree(ROOT / "metric_defs" / "filters", defs / "filters")
+    (defs / "lib.toml").write_text(
+        '[metric.anything]\nkind = "count"\n\n'
+        '[metric.no_device]\nkind = "proportion"\nwhere = "device IS NULL"\n',
+        encoding="utf-8",
+    )
+    events, exposures = logs()
+    silent = [exposure(f"u9{i:02d}", ("control", "treatment")[i % 2]) for i in range(6)]
+    spec = write_case(
+        tmp_path,
+        events,
+        exposures + silent,
+        decision="anything",
+        diagnostics=("no_device",),
+        defs=defs,
+    )
+    code, err, card = run_spec(spec, tmp_path)
+    assert code == 0 and card is not None, err
+    rows = {r["metric"]: r for r in card["metrics"]}
+    # 10 units with 5 events each and 3 silent units per arm: 50 / 13 events per unit
+    assert rows["anything"]["value"] == rows["anything"]["control_value"] == 50 / 13
+    assert rows["no_device"]["value"] == rows["no_device"]["control_value"] == 0.0
+    assert quality(card)["units_without_events"] == {"control": 3, "treatment": 3}

@@ -27,6 +27,15 @@ from metricforge.inputs import find_unreadable
 
 DEFAULT_MEMORY_LIMIT = "4GB"
 _STATEMENT_TYPES = {"unit_rows": "CREATE"}
+# Errors of the data's values or of the query, not of reading a file: no need to look
+# for a broken input (which reads every file).
+_NOT_A_FILE_PROBLEM = (
+    duckdb.ConversionException,
+    duckdb.OutOfRangeException,
+    duckdb.BinderException,
+    duckdb.InterruptException,
+    duckdb.OutOfMemoryException,
+)
 
 
 def _set(name: str, value: exp.Expr) -> str:
@@ -142,7 +151,9 @@ class DuckDBEngine:
                     except duckdb.Error as err:
                         if dog.fired:
                             raise dog.timeout_error() from None
-                        broken = find_unreadable(inputs.events + inputs.exposures)
+                        broken = None
+                        if not isinstance(err, _NOT_A_FILE_PROBLEM):  # name a broken file
+                            broken = find_unreadable(inputs.events + inputs.exposures)
                         if broken is not None:
                             raise broken from None
                         raise EngineError(f"DuckDB failed: {_first_line(err)}") from None
