@@ -394,54 +394,44 @@ def test_other_files_in_a_data_folder_are_not_read(
     _unchanged(card, baseline)
 
 
+def run_split(folder: Path, change: Callable[[pa.Table], pa.Table]) -> dict[str, Any]:
+    """The clean logs as two event files, the second changed by ``change``; the run's card."""
+    write_case(folder, *logs(), diagnostics=DIAGNOSTICS)
+    path = folder / "events" / "part-0.parquet"
+    table = pq.read_table(path)
+    pq.write_table(table.slice(0, 50), path)
+    pq.write_table(change(table.slice(50)), folder / "events" / "part-1.parquet")
+    code, err, card = run_spec(folder / "spec.toml", folder)
+    assert code == 0 and card is not None, err
+    return card
+
+
 def test_integer_and_float_values_across_files_are_unified(
     tmp_path: Path, baseline: dict[str, Any]
 ) -> None:
-    events, exposures = logs()
-    write_case(tmp_path, events, exposures, diagnostics=DIAGNOSTICS)
-    path = tmp_path / "events" / "part-0.parquet"
-    table = pq.read_table(path)
-    pq.write_table(table.slice(0, 50), path)
-    rest = table.slice(50)
-    pq.write_table(
-        set_column(
-            rest,
-            "latency_ms",
-            pa.array(
-                [None if v is None else round(v) for v in rest["latency_ms"].to_pylist()],
-                pa.int64(),
-            ),
-        ),
-        tmp_path / "events" / "part-1.parquet",
-    )
-    code, err, card = run_spec(tmp_path / "spec.toml", tmp_path)
-    assert code == 0 and card is not None, err
-    _unchanged(card, baseline)
+    def whole_numbers(t: pa.Table) -> pa.Table:
+        rounded = [None if v is None else round(v) for v in t["latency_ms"].to_pylist()]
+        return set_column(t, "latency_ms", pa.array(rounded, pa.int64()))
+
+    _unchanged(run_split(tmp_path, whole_numbers), baseline)
 
 
 def test_naive_and_zoned_timestamps_across_files_mean_the_same_instants(
     tmp_path: Path, baseline: dict[str, Any], monkeypatch: pytest.MonkeyPatch
 ) -> None:
     """Naive = UTC by contract; a zoned file is converted; the machine's zone plays no part."""
+
+    def zoned(t: pa.Table) -> pa.Table:
+        berlin = pa.timestamp("us", tz="Europe/Berlin")
+        return set_column(t, "ts", t["ts"].cast(pa.timestamp("us", tz="UTC")).cast(berlin))
+
     monkeypatch.setenv("TZ", "America/New_York")
     time.tzset()
     try:
-        events, exposures = logs()
-        write_case(tmp_path, events, exposures, diagnostics=DIAGNOSTICS)
-        path = tmp_path / "events" / "part-0.parquet"
-        table = pq.read_table(path)
-        pq.write_table(table.slice(0, 50), path)
-        zoned = table.slice(50)
-        berlin = pa.timestamp("us", tz="Europe/Berlin")
-        pq.write_table(
-            set_column(zoned, "ts", zoned["ts"].cast(pa.timestamp("us", tz="UTC")).cast(berlin)),
-            tmp_path / "events" / "part-1.parquet",
-        )
-        code, err, card = run_spec(tmp_path / "spec.toml", tmp_path)
+        card = run_split(tmp_path, zoned)
     finally:
         monkeypatch.delenv("TZ")
         time.tzset()
-    assert code == 0 and card is not None, err
     _unchanged(card, baseline)
     assert quality(card)["inputs"]["zoned_timestamp_files"] == ["events/part-1.parquet"]
 
