@@ -200,7 +200,8 @@ def _with_result(run: CompiledRun, sql: str) -> CompiledRun:
         ("SELECT 1 FROM unit_rows UNION SELECT 2 FROM unit_rows", "single SELECT"),
         ("COPY unit_rows TO 'x.csv'", "single SELECT"),
         ("SELECT * FROM other.main.unit_rows", "plain table name"),
-        ("SELECT x FROM unit_rows, UNNEST(range(9)) AS t(x)", "not allowed"),
+        ("SELECT x FROM unit_rows, UNNEST(range(9)) AS t(x)", "only a column"),
+        ("SELECT x FROM unit_rows, UNNEST([1, 2, 3]) AS t(x)", "only a column"),
         ("SELECT * FROM unit_rows WHERE unit = ?", "Placeholder"),
     ],
 )
@@ -240,6 +241,13 @@ def test_unit_query_reading_a_file_is_refused(compiled: CompiledRun) -> None:
     )
     with pytest.raises(EngineError, match="unit_rows.*Anonymous"):
         checked_statements(dataclasses.replace(compiled, unit_rows=sneaky), "duckdb")
+
+
+def test_a_list_column_may_be_spread_into_rows(compiled: CompiledRun) -> None:
+    spread = "SELECT variant, v FROM unit_rows CROSS JOIN UNNEST(list_col) AS t(v)"
+    assert [n for n, _ in checked_statements(_with_result(compiled, spread), "duckdb")][
+        -1
+    ] == "probe"
 
 
 def test_checked_statements_of_a_real_run(compiled: CompiledRun) -> None:

@@ -9,6 +9,8 @@ Every statement is checked as a syntax tree before it is rendered:
 - no statement holds a node that could reach outside the run: table functions, file
   readers, settings, statements such as COPY or ATTACH, placeholders, or functions that
   sqlglot does not know (``Anonymous``: the way a name like read_text would arrive).
+  UNNEST / EXPLODE / LATERAL may only spread a column's list into rows (e.g. the values of
+  a quantile metric), never a computed list such as range(n).
 
 The rendered text is parsed again and must give back one statement of the same kind.
 """
@@ -61,9 +63,6 @@ _FORBIDDEN: tuple[type[exp.Expr], ...] = (
     exp.LoadData,
     exp.Refresh,
     exp.Alter,
-    exp.Lateral,
-    exp.Unnest,
-    exp.Explode,
     exp.GenerateSeries,
     exp.ExplodingGenerateSeries,
     exp.Create,
@@ -85,6 +84,10 @@ def check_select(name: str, query: exp.Expr, tables: frozenset[str]) -> exp.Sele
             isinstance(node, exp.Func) and type(node).__name__.startswith("Current")
         ):
             raise _refuse(name, f"it uses {type(node).__name__}, which is not allowed")
+        if isinstance(node, exp.Unnest | exp.Explode) and not all(
+            isinstance(part, exp.Column) for part in [node.this, *node.expressions] if part
+        ):
+            raise _refuse(name, f"{type(node).__name__} may spread only a column into rows")
         if isinstance(node, exp.Table):
             if not isinstance(node.this, exp.Identifier) or node.args.get("db"):
                 raise _refuse(name, f"'{node.sql()[:60]}' is not a plain table name")
