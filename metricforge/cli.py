@@ -71,12 +71,15 @@ def run(
         InputHashes,
         typer.Option("--hash-inputs", help="footer: hash each Parquet footer; full: every byte."),
     ] = InputHashes.footer,
+    timeout: Annotated[
+        float, typer.Option("--timeout", min=0.001, help="Stop the queries after SECONDS.")
+    ] = 3600.0,
 ) -> None:
     """Compute the scorecard of one experiment and write it to OUT, all or nothing."""
     from metricforge import history
     from metricforge.engines.duckdb import DuckDBEngine
     from metricforge.manifest import hash_contents
-    from metricforge.report.files import write_outputs
+    from metricforge.report.files import prepare_output, write_outputs
     from metricforge.report.scorecard import build
     from metricforge.report.terminal import render
     from metricforge.runner import execute
@@ -84,7 +87,8 @@ def run(
 
     def action() -> bool:
         plan = load_plan(pipeline, bot_filter=bot_filter)
-        data = execute(plan, DuckDBEngine(threads=threads))
+        prepare_output(out, plan)
+        data = execute(plan, DuckDBEngine(threads=threads, timeout_s=timeout))
         if hash_inputs is InputHashes.full:
             hash_contents(data)
         card = build(data)

@@ -294,4 +294,5 @@ def write_comparison(out: Path, c: Comparison, *, forced: bool) -> None:
             "comparison.parquet": parquet_bytes(comparison_table(c)),
             "comparison.json": dump_json(comparison_json(c, forced=forced)),
         },
+        protected=[c.a.folder.absolute(), c.b.folder.absolute()],
     )

@@ -1,4 +1,11 @@
-"""Input files: discovery, schema checks and fingerprints, from Parquet footers only."""
+"""Input files: discovery, schema checks and fingerprints, from Parquet footers only.
+
+Data paths: a path the spec names (absolute, or relative to the spec's folder) may be
+anywhere the user can read, but it must be a regular Parquet file or a folder. In a
+folder, only ``*.parquet`` files are read, and a file that is a symbolic link must point
+inside that folder. Footers give each file's row count, hash and per-column null counts
+(used by the data-quality section) without reading any data.
+"""
 
 from __future__ import annotations
 
@@ -7,7 +14,7 @@ import hashlib
 import json
 import os
 import struct
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import pyarrow as pa
@@ -25,20 +32,49 @@ class InputFile:
     footer_sha256: str
     schema: pa.Schema
     content_sha256: str | None = None  # of the whole file; only when asked for (slow)
+    # Per top-level column: null values recorded in the footer statistics (None: not recorded)
+    null_counts: dict[str, int | None] = field(default_factory=dict, compare=False)
+
+
+def _inside(path: Path, folder: Path) -> bool:
+    try:
+        path.resolve().relative_to(folder.resolve())
+    except ValueError:
+        return False
+    return True
 
 
 def parquet_files(path: Path) -> list[Path]:
-    if path.is_file():
-        return [path]
-    if path.is_dir():
-        files = sorted(p for p in path.rglob("*.parquet") if p.is_file())
-        if files:
-            return files
-        raise InputDataError("no .parquet files in folder", file=str(path))
+    """The Parquet files a data path names: the file itself, or a folder's *.parquet."""
+    try:
+        if path.is_file():
+            return [path]
+        if path.is_dir():
+            files = sorted(p for p in path.rglob("*.parquet") if p.is_file())
+            for p in files:
+                if p.is_symlink() and not _inside(p, path):
+                    raise InputDataError(
+                        "a symbolic link in the data folder points outside it", file=str(p)
+                    )
+            if files:
+                return files
+            raise InputDataError("no .parquet files in folder", file=str(path))
+        if path.exists():
+            raise InputDataError("input is neither a regular file nor a folder", file=str(path))
+    except (OSError, ValueError) as err:
+        reason = getattr(err, "strerror", None) or str(err)
+        raise InputDataError(f"cannot open input: {reason}", file=str(path)) from None
     raise InputDataError("input not found", file=str(path))
 
 
 def _footer_sha256(path: Path) -> str:
+    try:
+        return _footer_hash(path)
+    except OSError as err:
+        raise InputDataError(f"cannot read file: {err.strerror}", file=str(path)) from None
+
+
+def _footer_hash(path: Path) -> str:
     with path.open("rb") as fh:
         fh.seek(0, 2)
         size = fh.tell()
@@ -63,7 +99,15 @@ def inspect(path: Path, base: Path) -> InputFile:
     except (pa.ArrowException, OSError) as err:
         first = str(err).splitlines()[0] if str(err) else type(err).__name__
         raise InputDataError(f"cannot read Parquet: {first}", file=str(path)) from None
-    return InputFile(path, label_of(path, base), path.stat().st_size, meta.num_rows, footer, schema)
+    return InputFile(
+        path,
+        label_of(path, base),
+        path.stat().st_size,
+        meta.num_rows,
+        footer,
+        schema,
+        null_counts=_null_counts(meta),
+    )
 
 
 def label_of(path: Path, base: Path) -> str:
@@ -99,6 +143,39 @@ def with_content_hashes(files: list[InputFile]) -> list[InputFile]:
             raise InputDataError("input file changed while the run read it", file=f.label)
         out.append(dataclasses.replace(f, content_sha256=digest))
     return out
+
+
+def _null_counts(meta: pq.FileMetaData) -> dict[str, int | None]:
+    """Nulls per top-level column from the row groups' statistics (None if not recorded)."""
+    counts: dict[str, int | None] = {}
+    for i in range(meta.num_row_groups):
+        group = meta.row_group(i)
+        for j in range(group.num_columns):
+            chunk = group.column(j)
+            name = chunk.path_in_schema
+            if "." in name:
+                continue
+            stats = chunk.statistics
+            known = stats is not None and stats.has_null_count
+            before = counts.get(name, 0)
+            counts[name] = before + int(stats.null_count) if known and before is not None else None
+    return counts
+
+
+def find_unreadable(paths: list[Path]) -> InputDataError | None:
+    """The first input whose data pages cannot be decoded, as an error naming it.
+
+    Used only after the engine failed, to name the broken file: it reads every file.
+    """
+    for path in paths:
+        try:
+            reader = pq.ParquetFile(path)
+            for _ in reader.iter_batches(batch_size=65_536):
+                pass
+        except (pa.ArrowException, OSError, ValueError) as err:
+            first = (str(err).splitlines() or [type(err).__name__])[0]
+            return InputDataError(f"cannot read Parquet data: {first[:160]}", file=str(path))
+    return None
 
 
 _TYPE_CHECKS = {

@@ -26,7 +26,7 @@ from metricforge.manifest import (
     sha256_text,
 )
 from metricforge.provenance import definitions_sha256
-from metricforge.report.files import write_outputs
+from metricforge.report.files import prepare_output, write_outputs
 from metricforge.report.scorecard import Scorecard, build
 from metricforge.reproduce import Verdict, judge
 from metricforge.runner import execute
@@ -206,6 +206,7 @@ def rerun(
         changes = verify_inputs(man, plan)
         if changes and not allow_changed_inputs:
             raise InputsChangedError(changes, man, plan.spec.path.parent)
+        prepare_output(out, plan)
         data = execute(plan, engine)
         if man.get("inputs", "hashes") == FULL:
             hash_contents(data)

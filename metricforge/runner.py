@@ -16,6 +16,7 @@ from metricforge.engines.base import Engine, EngineInputs
 from metricforge.errors import InputDataError
 from metricforge.inputs import InputFile, check_columns, fingerprint, inspect, parquet_files
 from metricforge.provenance import Stamp, make_stamp
+from metricforge.quality import summarise
 from metricforge.schema import EVENT_COLUMNS, EXPOSURE_COLUMNS
 from metricforge.spec.model import MetricDef, Plan, RuleKind
 from metricforge.stats import Moments
@@ -49,6 +50,7 @@ class RunData:
     provenance: dict[str, Any] = field(default_factory=dict)
     tables: dict[str, pa.Table] = field(default_factory=dict)  # every result query's table
     extras: Extras = field(default_factory=Extras)  # caps, CUPED moments, quantile summaries
+    quality: dict[str, Any] = field(default_factory=dict)  # the data_quality section
 
 
 def needed_event_columns(plan: Plan) -> tuple[str, ...]:
@@ -91,6 +93,7 @@ def execute(plan: Plan, engine: Engine) -> RunData:
     data = reshape(plan, stamp, files, tables["moments"])
     data.tables = tables
     data.extras = read_extras(plan, tables)
+    data.quality = summarise(plan, engine_inputs, files, tables.get("data_quality"))
     return data
 
 

@@ -151,10 +151,17 @@ def test_different_definitions_are_not_comparable_and_named(tmp_path: Path) -> N
 
 def test_compare_writes_all_or_nothing(demo: Path, tmp_path: Path) -> None:
     out = tmp_path / "cmp"
-    out.mkdir()
-    (out / "stale.txt").write_text("old")
-    assert invoke("compare", demo / "v2", demo / "v2", "--out", out).exit_code == 0
-    assert sorted(p.name for p in out.iterdir()) == ["comparison.json", "comparison.parquet"]
+    for _ in range(2):  # a previous comparison is replaced whole
+        assert invoke("compare", demo / "v2", demo / "v2", "--out", out).exit_code == 0
+        assert sorted(p.name for p in out.iterdir()) == ["comparison.json", "comparison.parquet"]
+    stale = tmp_path / "stale"
+    stale.mkdir()
+    (stale / "notes.txt").write_text("old")
+    result = invoke("compare", demo / "v2", demo / "v2", "--out", stale)
+    assert result.exit_code == 2 and "not empty" in result.output  # not ours to replace
+    assert [p.name for p in stale.iterdir()] == ["notes.txt"]
+    inside = invoke("compare", demo / "v2", demo / "v2", "--out", demo / "v2" / "cmp")
+    assert inside.exit_code == 2 and not (demo / "v2" / "cmp").exists()
     blocked = tmp_path / "file"
     blocked.write_text("x")
     result = invoke("compare", demo / "v2", demo / "v2", "--out", blocked)

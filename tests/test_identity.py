@@ -320,6 +320,7 @@ def test_stitching_stays_one_scan_and_renders_for_each_dialect(dialect: str) -> 
     assert ctes == ["first_exposure", "sessions", "units", "identified", "stitched"]
     assert [name for name, _ in run.results] == [
         "moments",
+        "data_quality",
         "exposure_days",
         "bot_events",
         "identities",

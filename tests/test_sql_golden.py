@@ -44,6 +44,7 @@ def test_one_scan_one_unit_grouping() -> None:
     assert ctes == ["first_exposure", "sessions", "units"]
     assert [name for name, _ in run.results] == [
         "moments",
+        "data_quality",
         "exposure_days",
         "bot_events",
         "caps",

@@ -18,6 +18,8 @@ Result queries read only ``unit_rows`` and return a few rows each:
 
 A quantile metric adds ``v_<metric>`` to ``unit_rows``: the unit's sorted list of values
 (its ``x_<metric>`` is the number of values, NULL without any).
+  data_quality    per-variant counts of what the scan left out or found odd
+                  (compile/quality.py)
 
 The unit query reads two views, ``events`` and ``exposures``, that the engine registers.
 """
@@ -32,6 +34,13 @@ import sqlglot.expressions as exp
 from metricforge.compile.checks import check_results
 from metricforge.compile.expressions import qualify
 from metricforge.compile.extras import cap_ctes, capped, extra_results, with_ctes
+from metricforge.compile.quality import (
+    DUPLICATE_EXPOSURES,
+    data_quality_query,
+    unit_columns,
+    usable,
+    value_checks,
+)
 from metricforge.compile.stitch import stitch_stages
 from metricforge.spec.model import BotRule, Kind, MetricDef, Plan, RuleKind, TwoVariantPolicy
 
@@ -97,7 +106,9 @@ def _and(*parts: exp.Expr | None) -> exp.Expr:
 
 
 def _event_condition(metric: MetricDef, events: str) -> exp.Expr:
-    kinds: exp.Expr | None = None
+    # A unit without events joins one all-NULL event row (LEFT JOIN); a condition that
+    # could hold on it (no event types; `where = "device IS NULL"`) must not count it.
+    kinds: exp.Expr = _col("ts", events).is_(exp.null()).not_()
     if metric.events:
         kinds = _col("event", events).isin(*[_lit(e) for e in metric.events])
     where = exp.paren(qualify(metric.where, events)) if metric.where is not None else None
@@ -127,6 +138,29 @@ class _Builder:
     # -- stage 1 -------------------------------------------------------------------------
     def first_exposure(self) -> exp.Select:
         x = "x"
+        # Exposure rows inside the experiment, exact repeats folded (and counted).
+        rows = (
+            exp.select(
+                _col("unit_id"),
+                _col("variant"),
+                _col("ts"),
+                exp.alias_(exp.Count(this=exp.Star()), "n_rows"),
+            )
+            .from_("exposures")
+            .where(
+                _and(
+                    _col("experiment").eq(_lit(self.spec.name)),
+                    _col("unit_id").is_(exp.null()).not_(),
+                    _col("variant").is_(exp.null()).not_(),
+                    _col("ts") >= _ts(self.spec.start),
+                    _col("ts") < _ts(self.spec.end),
+                )
+            )
+            .group_by(_col("unit_id"), _col("variant"), _col("ts"))
+        )
+        repeats = exp.Sub(
+            this=exp.Sum(this=_col("n_rows", x)), expression=exp.Count(this=exp.Star())
+        )
         ts, variant = _col("ts", x), _col("variant", x)
         # Each planned variant's first exposure time; the unit's variant is the one it saw
         # first (ties in the spec's order, control first), so a unit seen in two variants is
@@ -140,23 +174,14 @@ class _Builder:
             exp.alias_(exp.Min(this=ts.copy()), "first_ts"),
             exp.alias_(chosen.else_(exp.Min(this=variant.copy())), "variant"),
             exp.alias_(exp.Count(this=exp.Distinct(expressions=[variant.copy()])), "n_variants"),
+            exp.alias_(exp.cast(repeats, BIGINT), DUPLICATE_EXPOSURES),
         )
         if self.spec.stitch_to:
             select = select.select(
                 *[exp.alias_(f, f"first_ts_{i}") for i, f in enumerate(firsts)], copy=False
             )
-        return (
-            select.from_(exp.alias_(exp.to_table("exposures"), x, table=True))
-            .where(
-                _and(
-                    _col("experiment", x).eq(_lit(self.spec.name)),
-                    _col("unit_id", x).is_(exp.null()).not_(),
-                    _col("variant", x).is_(exp.null()).not_(),
-                    _col("ts", x) >= _ts(self.spec.start),
-                    _col("ts", x) < _ts(self.spec.end),
-                )
-            )
-            .group_by(_col("unit_id", x))
+        return select.from_(exp.alias_(exp.Subquery(this=rows), x, table=True)).group_by(
+            _col("unit_id", x)
         )
 
     # -- stage 2 -------------------------------------------------------------------------
@@ -191,6 +216,7 @@ class _Builder:
             _col("variant", f),
             _col("n_variants", f),
             _col("first_ts", f),
+            _col(DUPLICATE_EXPOSURES, f),
             exp.alias_(_col("session_id", e), "session"),
             exp.alias_(n_events, "n_events"),
         )
@@ -217,7 +243,13 @@ class _Builder:
             select = select.select(*self._session_parts(metric, e, "", in_window))
             for period, cond in periods:
                 select = select.select(*self._session_parts(metric, e, period, cond))
-        keys = [_col("unit", f), _col("variant", f), _col("n_variants", f), _col("first_ts", f)]
+        keys = [
+            _col("unit", f),
+            _col("variant", f),
+            _col("n_variants", f),
+            _col("first_ts", f),
+            _col(DUPLICATE_EXPOSURES, f),
+        ]
         return (
             select.from_(exp.alias_(exp.to_table("first_exposure"), f, table=True))
             .join(exp.alias_(exp.to_table("events"), e, table=True), on=join_on, join_type="left")
@@ -259,13 +291,22 @@ class _Builder:
             return [exp.alias_(exp.Count(this=_case(cond, _lit(1))), s)]
         if metric.kind in (Kind.SUM, Kind.MEAN):
             assert metric.value is not None
-            value = exp.cast(qualify(metric.value, e), EXACT)
-            parts: list[exp.Expr] = [exp.alias_(exp.Sum(this=_case(cond, value)), s)]
+            raw = qualify(metric.value, e)
+            used = _and(cond, usable(raw))  # NaN, infinite and huge values are left out
+            # TRY_CAST: an engine may hoist the cast out of the CASE and apply it to every row
+            value = exp.TryCast(this=raw.copy(), to=EXACT.copy())
+            parts: list[exp.Expr] = [exp.alias_(exp.Sum(this=_case(used, value)), s)]
             if metric.kind is Kind.MEAN:
-                has = _and(cond, qualify(metric.value, e).is_(exp.null()).not_())
                 parts.append(
-                    exp.alias_(exp.Count(this=_case(has, _lit(1))), f"c{period}_{metric.name}")
+                    exp.alias_(
+                        exp.Count(this=_case(used.copy(), _lit(1))), f"c{period}_{metric.name}"
+                    )
                 )
+            if not period:
+                parts += [
+                    exp.alias_(exp.Count(this=_case(check, _lit(1))), name)
+                    for name, check in value_checks(cond, raw, metric)
+                ]
             return parts
         if metric.kind is Kind.DWELL_SUCCESS:
             return [exp.alias_(self._dwell_success(metric, e, period_cond), s)]
@@ -333,6 +374,7 @@ class _Builder:
             _col("variant"),
             _col("n_variants"),
             _col("first_ts"),
+            _col(DUPLICATE_EXPOSURES),
             exp.alias_(exp.cast(exp.Sum(this=_col("n_events")), BIGINT), "n_events"),
             exp.alias_(exp.Max(this=_col("n_events")), "max_session_events"),
             exp.alias_(exp.Count(this=_col("session")), "n_sessions"),
@@ -352,11 +394,19 @@ class _Builder:
                 select = select.select(
                     exp.alias_(exp.Max(this=_col(f"bot_rule_{i}")), f"bot_rule_{i}")
                 )
+        for column in unit_columns(self.plan):
+            select = select.select(exp.alias_(exp.cast(exp.Sum(this=_col(column)), BIGINT), column))
         for metric in self.plan.metrics:
             select = select.select(*self._unit_parts(metric, "", "n_events" if pre else None))
             for period in periods:
                 select = select.select(*self._unit_parts(metric, period, f"n_{period}_events"))
-        keys = [_col("unit"), _col("variant"), _col("n_variants"), _col("first_ts")]
+        keys = [
+            _col("unit"),
+            _col("variant"),
+            _col("n_variants"),
+            _col("first_ts"),
+            _col(DUPLICATE_EXPOSURES),
+        ]
         return select.from_("sessions").group_by(*keys)
 
     def _unit_parts(self, metric: MetricDef, period: str, active: str | None) -> list[exp.Expr]:
@@ -459,6 +509,8 @@ class _Builder:
             exp.alias_(excluded.copy() if excluded is not None else exp.false(), "contaminated"),
             exp.alias_(two_variants, "two_variants"),
             _col("first_ts"),
+            _col(DUPLICATE_EXPOSURES),
+            *[_col(column) for column in unit_columns(self.plan)],
         )
         if stitched:
             select = select.select(_col("identity"), _col("n_cookies"))
@@ -544,6 +596,7 @@ class _Builder:
     def build(self) -> CompiledRun:
         results = (
             ("moments", self.moments()),
+            ("data_quality", data_quality_query(self.plan, UNIT_TABLE)),
             *check_results(self.plan, self.ordered),
             *extra_results(self.plan, UNIT_TABLE, ordered=self.ordered),
         )

@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import sqlglot.expressions as exp
 
+from metricforge.compile.quality import DUPLICATE_EXPOSURES, unit_columns
 from metricforge.spec.model import Kind, Plan, RuleKind
 
 DOUBLE = exp.DataType.build("DOUBLE")
@@ -139,6 +140,8 @@ def _stitched(plan: Plan, ordered: bool, periods: list[str]) -> exp.Select:
     for period in periods:
         events = f"n_{period}_events"
         select = select.select(exp.alias_(exp.cast(exp.Sum(this=_c(events, i)), BIGINT), events))
+    for column in (DUPLICATE_EXPOSURES, *unit_columns(plan)):  # data-quality counts add
+        select = select.select(exp.alias_(exp.cast(exp.Sum(this=_c(column, i)), BIGINT), column))
     for k, rule in enumerate(plan.bot_filter.rules):
         if rule.kind is not RuleKind.SESSION_EVENTS:
             select = select.select(

@@ -1,4 +1,13 @@
-"""The embedded default engine: DuckDB, locked down before any compiled query runs."""
+"""The embedded default engine: DuckDB, locked down before any compiled query runs.
+
+The connection is hardened in this order, then its configuration is locked:
+extension auto-install and auto-load off, community extensions and persistent secrets
+off, a memory limit and a private temporary directory, external access off with exactly
+the input files readable (``allowed_paths``; ``allowed_directories`` holds only the private
+temporary folder: DuckDB lets both lists be written as well as read, so no input folder is
+on them), time zone UTC. Only the statements that ``engines/guard.py`` checked run on it,
+under a timeout watchdog.
+"""
 
 from __future__ import annotations
 
@@ -11,14 +20,92 @@ import sqlglot.expressions as exp
 
 from metricforge.compile.query import CompiledRun
 from metricforge.engines.base import EngineInputs
+from metricforge.engines.guard import checked_statements
+from metricforge.engines.watchdog import DEFAULT_TIMEOUT_S, Watchdog
 from metricforge.errors import EngineError
+from metricforge.inputs import find_unreadable
 
 DEFAULT_MEMORY_LIMIT = "4GB"
+_STATEMENT_TYPES = {"unit_rows": "CREATE"}
+# Errors of the data's values or of the query, not of reading a file: no need to look
+# for a broken input (which reads every file).
+_NOT_A_FILE_PROBLEM = (
+    duckdb.ConversionException,
+    duckdb.OutOfRangeException,
+    duckdb.BinderException,
+    duckdb.InterruptException,
+    duckdb.OutOfMemoryException,
+)
 
 
 def _set(name: str, value: exp.Expr) -> str:
     item = exp.SetItem(this=exp.EQ(this=exp.column(name), expression=value))
     return exp.Set(expressions=[item]).sql(dialect="duckdb")
+
+
+def hardened_connection(
+    files: list[Path],
+    temp_dir: Path,
+    *,
+    memory_limit: str = DEFAULT_MEMORY_LIMIT,
+    threads: int | None = None,
+) -> duckdb.DuckDBPyConnection:
+    """A connection that can read only ``files`` and whose settings are locked."""
+    config: dict[str, str | bool | int | float | list[str]] = {
+        "autoinstall_known_extensions": False,
+        "autoload_known_extensions": False,
+        "allow_community_extensions": False,
+        "allow_persistent_secrets": False,
+        "memory_limit": memory_limit,
+        "temp_directory": str(temp_dir),
+        # Parquet min/max statistics leave NaN out; with them DuckDB folds `isnan(x)` to false
+        # and `abs(x) < 1e18` to true for a column holding NaN, so NaN values would slip past
+        # the checks of compile/quality.py. Values are decided row by row instead.
+        "disabled_optimizers": "statistics_propagation",
+    }
+    if threads:
+        config["threads"] = threads
+    con = duckdb.connect(":memory:", config=config)
+    paths = sorted({str(p) for f in files for p in (f.absolute(), f.resolve())})
+    spill = str(temp_dir.resolve()) + "/"
+    for name, value in (
+        ("TimeZone", exp.Literal.string("UTC")),
+        ("allowed_paths", exp.Array(expressions=[exp.Literal.string(p) for p in paths])),
+        ("allowed_directories", exp.Array(expressions=[exp.Literal.string(spill)])),
+        ("enable_external_access", exp.false()),
+        ("lock_configuration", exp.true()),  # last: nothing can be changed after this
+    ):
+        con.execute(_set(name, value))
+    return con
+
+
+def _register_views(con: duckdb.DuckDBPyConnection, inputs: EngineInputs) -> None:
+    """The views ``events`` and ``exposures`` over the inputs; ``ts`` as UTC TIMESTAMP."""
+
+    def column(name: str) -> duckdb.Expression:
+        if name == "ts":  # naive (UTC by contract) and zoned files alike become UTC
+            return duckdb.ColumnExpression(name).cast(duckdb.sqltypes.TIMESTAMP).alias(name)
+        return duckdb.ColumnExpression(name)
+
+    events = con.read_parquet(
+        [str(p.absolute()) for p in inputs.events],
+        hive_partitioning=inputs.hive,
+        union_by_name=True,
+    )
+    events.select(*[column(c) for c in inputs.event_columns]).create_view("events")
+    exposures = con.read_parquet([str(p.absolute()) for p in inputs.exposures], union_by_name=True)
+    exposures.select(*[column(c) for c in ("unit_id", "experiment", "variant", "ts")]).create_view(
+        "exposures"
+    )
+
+
+def _check_with_duckdb(statements: list[tuple[str, str]]) -> None:
+    """DuckDB's own parser must see exactly one statement of the expected type in each."""
+    for name, sql in statements:
+        parsed = duckdb.extract_statements(sql)
+        expected = _STATEMENT_TYPES.get(name, "SELECT")
+        if len(parsed) != 1 or parsed[0].type.name != expected:
+            raise EngineError(f"refusing to run statement '{name}': not one {expected} statement")
 
 
 class DuckDBEngine:
@@ -31,65 +118,54 @@ class DuckDBEngine:
         threads: int | None = None,
         memory_limit: str = DEFAULT_MEMORY_LIMIT,
         temp_dir: Path | None = None,
+        timeout_s: float | None = DEFAULT_TIMEOUT_S,
     ) -> None:
         self.threads = threads
         self.memory_limit = memory_limit
         self.temp_dir = temp_dir
+        self.timeout_s = timeout_s
 
     def version(self) -> str:
         return str(duckdb.__version__)
 
-    def _connect(self, inputs: EngineInputs, temp_dir: Path) -> duckdb.DuckDBPyConnection:
-        config: dict[str, str | bool | int | float | list[str]] = {
-            "autoinstall_known_extensions": False,
-            "autoload_known_extensions": False,
-            "memory_limit": self.memory_limit,
-            "temp_directory": str(temp_dir),
-        }
-        if self.threads:
-            config["threads"] = self.threads
-        con = duckdb.connect(":memory:", config=config)
-        folders = sorted({str(p.resolve().parent) + "/" for p in inputs.events + inputs.exposures})
-        folders.append(str(temp_dir.resolve()) + "/")
-        con.execute(
-            _set(
-                "allowed_directories",
-                exp.Array(expressions=[exp.Literal.string(f) for f in folders]),
-            )
-        )
-        con.execute(_set("enable_external_access", exp.false()))
-        con.execute(_set("lock_configuration", exp.true()))
-        events = con.read_parquet(
-            [str(p) for p in inputs.events], hive_partitioning=inputs.hive, union_by_name=True
-        )
-        events.select(*[duckdb.ColumnExpression(c) for c in inputs.event_columns]).create_view(
-            "events"
-        )
-        exposures = con.read_parquet([str(p) for p in inputs.exposures], union_by_name=True)
-        exposures.select(
-            *[duckdb.ColumnExpression(c) for c in ("unit_id", "experiment", "variant", "ts")]
-        ).create_view("exposures")
-        return con
-
     def run(self, compiled: CompiledRun, inputs: EngineInputs) -> dict[str, pa.Table]:
-        queries = [compiled.unit_rows, *(q for _, q in compiled.results)]
-        if not all(isinstance(q, exp.Select) for q in queries):
-            raise EngineError("refusing to run anything but SELECT queries")
-        store = compiled.materialise(self.dialect).sql(dialect=self.dialect)
+        statements = checked_statements(compiled, self.dialect)
+        _check_with_duckdb(statements)
+        (_, store), results = statements[0], statements[1:]
         with tempfile.TemporaryDirectory(prefix="metricforge-spill-", dir=self.temp_dir) as tmp:
             try:
-                con = self._connect(inputs, Path(tmp))
-                try:
-                    con.execute(store)
-                    return {
-                        name: _fetch(con.sql(query.sql(dialect=self.dialect)))
-                        for name, query in compiled.results
-                    }
-                finally:
-                    con.close()
+                con = hardened_connection(
+                    inputs.events + inputs.exposures,
+                    Path(tmp),
+                    memory_limit=self.memory_limit,
+                    threads=self.threads,
+                )
             except duckdb.Error as err:
-                first = str(err).splitlines()[0]
-                raise EngineError(f"DuckDB failed: {first}") from None
+                raise EngineError(f"DuckDB failed to start: {_first_line(err)}") from None
+            try:
+                with Watchdog(con.interrupt, self.timeout_s) as dog:
+                    try:
+                        _register_views(con, inputs)
+                        con.execute(store)
+                        tables = {name: _fetch(con.sql(sql)) for name, sql in results}
+                    except duckdb.Error as err:
+                        if dog.fired:
+                            raise dog.timeout_error() from None
+                        broken = None
+                        if not isinstance(err, _NOT_A_FILE_PROBLEM):  # name a broken file
+                            broken = find_unreadable(inputs.events + inputs.exposures)
+                        if broken is not None:
+                            raise broken from None
+                        raise EngineError(f"DuckDB failed: {_first_line(err)}") from None
+                    if dog.fired:
+                        raise dog.timeout_error()
+                    return tables
+            finally:
+                con.close()
+
+
+def _first_line(err: BaseException) -> str:
+    return (str(err).splitlines() or [type(err).__name__])[0]
 
 
 def _fetch(relation: duckdb.DuckDBPyRelation) -> pa.Table:

@@ -1,12 +1,10 @@
-"""Writing results all or nothing: a temporary folder beside the target, then a rename."""
+"""Writing results all or nothing: the files' bytes, then one publish (report/publish.py)."""
 
 from __future__ import annotations
 
 import json
 import math
-import os
-import shutil
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -15,8 +13,10 @@ import pyarrow.parquet as pq
 
 from metricforge.errors import OutputError
 from metricforge.manifest import build_manifest
+from metricforge.report.publish import check_target, protected_paths, publish, recover
 from metricforge.report.scorecard import Scorecard
 from metricforge.runner import RunData
+from metricforge.spec.model import Plan
 
 
 def _json_default(value: object) -> object:
@@ -35,38 +35,25 @@ def manifest(data: RunData, card: Scorecard) -> dict[str, Any]:
     return build_manifest(data, card)
 
 
-def _write(path: Path, payload: bytes) -> None:
-    with path.open("wb") as fh:
-        fh.write(payload)
-        fh.flush()
-        os.fsync(fh.fileno())
+def prepare_output(out: Path, plan: Plan) -> Path:
+    """Check ``out`` against the output rules before any work; tidy killed runs' leftovers."""
+    target = check_target(out, *protected_paths(plan))
+    try:
+        recover(target)
+    except OSError as err:
+        raise OutputError(f"cannot tidy the output folder: {err.strerror}", file=str(out)) from None
+    return target
 
 
 def write_outputs(out: Path, data: RunData, card: Scorecard) -> None:
     """Write scorecard.parquet, scorecard.json and manifest.json into ``out`` atomically."""
-    out = out.absolute()
-    parent = out.parent
-    try:
-        parent.mkdir(parents=True, exist_ok=True)
-        if out.exists() and not out.is_dir():
-            raise OutputError("output path exists and is not a folder", file=str(out))
-        tmp = parent / f".{out.name}.partial-{os.getpid()}"
-        if tmp.exists():
-            shutil.rmtree(tmp)
-        tmp.mkdir()
-        pq.write_table(card.table(), tmp / "scorecard.parquet", compression="zstd")
-        with (tmp / "scorecard.parquet").open("rb+") as fh:
-            os.fsync(fh.fileno())
-        _write(tmp / "scorecard.json", dump_json(card.as_json()))
-        _write(tmp / "manifest.json", dump_json(manifest(data, card)))
-        old = parent / f".{out.name}.old-{os.getpid()}"
-        if out.exists():
-            out.rename(old)
-        tmp.rename(out)
-        if old.exists():
-            shutil.rmtree(old)
-    except OSError as err:
-        raise OutputError(f"cannot write results: {err.strerror}", file=str(out)) from None
+    target = check_target(out, *protected_paths(data.plan))
+    files = {
+        "scorecard.parquet": parquet_bytes(card.table()),
+        "scorecard.json": dump_json(card.as_json()),
+        "manifest.json": dump_json(manifest(data, card)),
+    }
+    publish(target, files)
 
 
 def parquet_bytes(table: pa.Table) -> bytes:
@@ -75,26 +62,12 @@ def parquet_bytes(table: pa.Table) -> bytes:
     return bytes(sink.getvalue().to_pybytes())
 
 
-def write_folder(out: Path, files: Mapping[str, bytes]) -> None:
+def write_folder(out: Path, files: Mapping[str, bytes], protected: Sequence[Path] = ()) -> None:
     """Write ``files`` (name → content) as the folder ``out``, all or nothing, the same way
-    as write_outputs: a hidden temporary folder beside it, every file flushed, then renamed."""
-    out = out.absolute()
-    parent = out.parent
+    as write_outputs (see report/publish.py); ``protected`` are folders it may not touch."""
+    target = check_target(out, protected, [])
     try:
-        parent.mkdir(parents=True, exist_ok=True)
-        if out.exists() and not out.is_dir():
-            raise OutputError("output path exists and is not a folder", file=str(out))
-        tmp = parent / f".{out.name}.partial-{os.getpid()}"
-        if tmp.exists():
-            shutil.rmtree(tmp)
-        tmp.mkdir()
-        for name, payload in files.items():
-            _write(tmp / name, payload)
-        old = parent / f".{out.name}.old-{os.getpid()}"
-        if out.exists():
-            out.rename(old)
-        tmp.rename(out)
-        if old.exists():
-            shutil.rmtree(old)
+        recover(target)
     except OSError as err:
-        raise OutputError(f"cannot write results: {err.strerror}", file=str(out)) from None
+        raise OutputError(f"cannot tidy the output folder: {err.strerror}", file=str(out)) from None
+    publish(target, dict(files))

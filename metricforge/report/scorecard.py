@@ -5,7 +5,7 @@ from __future__ import annotations
 import contextlib
 import functools
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import pyarrow as pa
@@ -81,6 +81,7 @@ class Scorecard:
     variants: list[dict[str, Any]]
     stamp: dict[str, Any]
     identity: dict[str, Any] | None = None  # what identity stitching merged, if it ran
+    quality: dict[str, Any] = field(default_factory=dict)
 
     def table(self) -> pa.Table:
         return pa.Table.from_pylist(self.rows, schema=SCORECARD_SCHEMA)
@@ -92,6 +93,7 @@ class Scorecard:
             "stamp": self.stamp,
             **({"identity": self.identity} if self.identity is not None else {}),
             "variants": self.variants,
+            "data_quality": self.quality,
             "metrics": [_clean(r) for r in self.rows],
         }
 
@@ -195,6 +197,7 @@ def build(data: RunData) -> Scorecard:
         variants=variant_section(data),
         stamp=stamp,
         identity=identity_section(data),
+        quality=data.quality,
     )
 
 

@@ -65,6 +65,8 @@ def render(card: Scorecard, console: Console) -> None:
             f"  {v['variant']}: {v['units']} units analysed, {v['bot_units']} bot units removed,"
             f" {v['contaminated_units']} seen in two variants"
         )
+    for note in card.quality.get("notes", []):
+        console.print(f"  data quality: {note}", markup=False)
     table = Table(title=None, show_lines=False)
     for col in (
         "metric",

@@ -13,18 +13,40 @@ from metricforge.spec.metrics import load_library
 from metricforge.spec.model import ExperimentSpec, Factor, MetricDef, Plan, TwoVariantPolicy
 from metricforge.spec.tomlfile import Section, TomlFile, read_toml
 
+FIRST_YEAR, LAST_YEAR = 1970, 9000
+MAX_WINDOW_DAYS = 366
+MAX_VARIANTS = 20
+MAX_NAME = 200
+
 
 def _datetime(sec: Section, key: str) -> dt.datetime:
     value = sec.table.get(key)
     if isinstance(value, dt.datetime):
         if value.tzinfo is not None:
-            value = value.astimezone(dt.UTC).replace(tzinfo=None)
-        return value
-    if isinstance(value, dt.date):
-        return dt.datetime(value.year, value.month, value.day)
-    if value is None:
+            try:
+                value = value.astimezone(dt.UTC).replace(tzinfo=None)
+            except (OverflowError, ValueError):
+                raise sec.error("date-time out of range", key) from None
+    elif isinstance(value, dt.date):
+        value = dt.datetime(value.year, value.month, value.day)
+    elif value is None:
         raise sec.error("required key is missing", key)
-    raise sec.error("expected a TOML date or date-time (UTC)", key)
+    else:
+        raise sec.error("expected a TOML date or date-time (UTC)", key)
+    if not FIRST_YEAR <= value.year <= LAST_YEAR:
+        raise sec.error(f"the year must be between {FIRST_YEAR} and {LAST_YEAR}", key)
+    return value
+
+
+def plain_name(sec: Section, key: str, value: str, limit: int = MAX_NAME) -> str:
+    """``value`` if it is 1 to ``limit`` characters without control characters."""
+    if not value or len(value) > limit or not value.isprintable():
+        raise sec.error(f"must be 1 to {limit} printable characters (no control characters)", key)
+    return value
+
+
+def _data_path(sec: Section, key: str, base: Path) -> Path:
+    return base / plain_name(sec, key, sec.req_str(key), 4096)
 
 
 def load_spec(path: Path) -> ExperimentSpec:
@@ -67,7 +89,10 @@ def load_spec(path: Path) -> ExperimentSpec:
         )
     variants_sec = ex.sub("variants")
     variants: list[tuple[str, float]] = []
+    if len(variants_sec.table) > MAX_VARIANTS:
+        raise ex.error(f"at most {MAX_VARIANTS} variants", "variants")
     for name in variants_sec.table:
+        plain_name(variants_sec, name, name, 100)
         share = variants_sec.number(name)
         if not (math.isfinite(share) and share > 0):
             raise variants_sec.error("planned share must be a positive number", name)
@@ -88,8 +113,8 @@ def load_spec(path: Path) -> ExperimentSpec:
     if end <= start:
         raise ex.error("end must be after start", "end")
     window = ex.integer("window_days", 14)
-    if window < 1:
-        raise ex.error("window_days must be at least 1", "window_days")
+    if not 1 <= window <= MAX_WINDOW_DAYS:
+        raise ex.error(f"window_days must be between 1 and {MAX_WINDOW_DAYS}", "window_days")
     pre_days = ex.integer("pre_period_days", 0)
     if not 0 <= pre_days <= 366:
         raise ex.error("pre_period_days must be between 0 and 366", "pre_period_days")
@@ -128,7 +153,7 @@ def load_spec(path: Path) -> ExperimentSpec:
     margins = _margins(met, guardrails)
     factors = _factors(top.sub("factors"), control, names) if top.has("factors") else ()
     return ExperimentSpec(
-        name=ex.req_str("name"),
+        name=plain_name(ex, "name", ex.req_str("name")),
         description=ex.text("description", "") or "",
         path=path,
         sha256=toml.sha256,
@@ -147,9 +172,12 @@ def load_spec(path: Path) -> ExperimentSpec:
         two_variant_units=two_variant,
         max_two_variant_share=max_two_variant,
         bot_filter_ref=ex.req_str("bot_filter"),
-        events_path=base / data.req_str("events"),
-        exposures_path=base / data.req_str("exposures"),
-        definition_paths=tuple(base / p for p in data.str_list("definitions", ["../metric_defs"])),
+        events_path=_data_path(data, "events", base),
+        exposures_path=_data_path(data, "exposures", base),
+        definition_paths=tuple(
+            base / plain_name(data, "definitions", p, 4096)
+            for p in data.str_list("definitions", ["../metric_defs"])
+        ),
         decision=decision,
         guardrails=guardrails,
         diagnostics=diagnostics,
@@ -215,9 +243,10 @@ def _factors(sec: Section, control: str, variants: list[str]) -> tuple[Factor, .
 
 def filters_folder(spec: ExperimentSpec) -> Path:
     toml = read_toml(spec.path)
-    folder = toml.data.get("data", {}).get("filters")
-    if isinstance(folder, str):
-        return spec.path.parent / folder
+    data = Section(toml, ("data",), toml.data.get("data", {}))
+    folder = data.text("filters")
+    if folder is not None:
+        return spec.path.parent / plain_name(data, "filters", folder, 4096)
     return (
         spec.definition_paths[0] / "filters"
         if spec.definition_paths[0].is_dir()

@@ -35,6 +35,8 @@ def released_versions(folder: Path) -> list[dict[str, str | int]]:
         sec = Section(registry, (name,), versions)
         for version, entry in sec.table.items():
             ver = Section(registry, (name, version), entry)
+            if not (version.isascii() and version.isdigit()) or len(version) > 9:
+                raise ver.error("a released version is a whole number, e.g. [bots.3]")
             out.append(
                 {
                     "name": name,
@@ -108,16 +110,19 @@ def _parse_rule(sec: Section) -> BotRule:
     if kind is RuleKind.SESSION_EVENTS:
         sec.check_keys({"kind", "max", "description"})
         limit = sec.integer("max")
-        if limit is None or limit < 1:
-            raise sec.error("max must be a positive integer", "max")
+        if limit is None or not 1 <= limit <= 1_000_000_000:
+            raise sec.error("max must be a whole number from 1 to 1000000000", "max")
         return BotRule(kind=kind, max_events=limit)
     sec.check_keys({"kind", "tokens", "description"})
     tokens = sec.str_list("tokens")
     if not tokens:
         raise sec.error("tokens must be a non-empty list of strings", "tokens")
-    if len(tokens) > MAX_TOKENS or any(not t or len(t) > MAX_TOKEN_LENGTH for t in tokens):
+    if len(tokens) > MAX_TOKENS or any(
+        not t or len(t) > MAX_TOKEN_LENGTH or not t.isprintable() for t in tokens
+    ):
         raise sec.error(
-            f"at most {MAX_TOKENS} tokens of 1 to {MAX_TOKEN_LENGTH} characters each", "tokens"
+            f"at most {MAX_TOKENS} tokens of 1 to {MAX_TOKEN_LENGTH} printable characters each",
+            "tokens",
         )
     if kind is RuleKind.USER_AGENT:
         tokens = [t.lower() for t in tokens]

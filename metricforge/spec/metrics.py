@@ -2,16 +2,20 @@
 
 from __future__ import annotations
 
+import math
 import re
 from pathlib import Path
 
 from metricforge.compile.expressions import parse_expression
 from metricforge.errors import SpecError, closest
-from metricforge.schema import EVENT_COLUMNS, EVENT_TYPES, NUMERIC_TYPES
+from metricforge.schema import EVENT_COLUMNS, EVENT_TYPES
 from metricforge.spec.model import PER_UNIT_KINDS, Direction, Kind, MetricDef, Origin
 from metricforge.spec.tomlfile import Section, TomlFile, read_toml
 
 NAME = re.compile(r"^[a-z][a-z0-9_]{0,62}$")
+MAX_TERMS = 50
+MAX_PARTS = 500  # per-unit parts a ratio or composite expands to in the compiled SQL
+MAX_NESTING = 10  # ratio parts and composite terms built of other metrics, level upon level
 _COMMON = {"kind", "direction", "unit_label", "description"}
 _KEYS: dict[Kind, set[str]] = {
     Kind.COUNT: _COMMON | {"event", "where"},
@@ -67,8 +71,7 @@ def load_library(paths: tuple[Path, ...]) -> dict[str, MetricDef]:
             library[name] = _load_metric(toml, name)
     for metric in library.values():
         _check_references(metric, library)
-    for name in library:
-        _check_acyclic(name, library, ())
+    _check_graph(library)
     return library
 
 
@@ -96,6 +99,7 @@ def _load_metric(toml: TomlFile, name: str) -> MetricDef:
             file=toml.name,
             key=f"metric.{name}.where",
             line=toml.line_of("metric", name, "where"),
+            expect="boolean",
         )
     if kind in (Kind.SUM, Kind.MEAN, Kind.QUANTILE):
         text = sec.req_str("value")
@@ -105,9 +109,8 @@ def _load_metric(toml: TomlFile, name: str) -> MetricDef:
             file=toml.name,
             key=f"metric.{name}.value",
             line=toml.line_of("metric", name, "value"),
+            expect="number",
         )
-        if tree.key == "column" and EVENT_COLUMNS[tree.name] not in NUMERIC_TYPES:
-            raise sec.error(f"column '{tree.name}' is not numeric", "value")
         fields["value_text"] = text
         fields["value"] = tree
     if kind is Kind.RATIO:
@@ -137,8 +140,12 @@ def _load_metric(toml: TomlFile, name: str) -> MetricDef:
         if not terms.table:
             raise terms.error("a composite needs at least one term")
         parsed: list[tuple[str, float]] = []
+        if len(terms.table) > MAX_TERMS:
+            raise terms.error(f"a composite has at most {MAX_TERMS} terms")
         for term in terms.table:
             weight = terms.number(term)
+            if not (math.isfinite(weight) and abs(weight) <= 1e12):
+                raise terms.error("a weight must be a finite number of size at most 1e12", term)
             parsed.append((term, weight))
         fields["terms"] = tuple(parsed)
     return MetricDef(
@@ -175,14 +182,38 @@ def _check_references(metric: MetricDef, library: dict[str, MetricDef]) -> None:
             )
 
 
-def _check_acyclic(name: str, library: dict[str, MetricDef], trail: tuple[str, ...]) -> None:
-    if name in trail:
-        metric = library[trail[0]]
-        raise SpecError(
-            "metrics refer to each other in a cycle: " + " -> ".join((*trail, name)),
-            file=metric.origin.file,
-            line=metric.origin.line,
-            key=f"metric.{trail[0]}",
+def _check_graph(library: dict[str, MetricDef]) -> None:
+    """No cycles, at most MAX_NESTING levels, and a bounded compiled size per metric.
+
+    Each metric is visited once (memoised), so a library shaped as a wide diamond of
+    composites cannot make this check, or the compiled SQL, grow exponentially.
+    """
+    depth: dict[str, int] = {}
+    size: dict[str, int] = {}
+
+    def fail(message: str, first: str) -> SpecError:
+        metric = library[first]
+        return SpecError(
+            message, file=metric.origin.file, line=metric.origin.line, key=f"metric.{first}"
         )
-    for dep in library[name].dependencies():
-        _check_acyclic(dep, library, (*trail, name))
+
+    def visit(name: str, trail: tuple[str, ...]) -> None:
+        if name in trail:
+            cycle = " -> ".join((*trail, name))
+            raise fail(f"metrics refer to each other in a cycle: {cycle}", trail[0])
+        if name not in depth:
+            deps = library[name].dependencies()
+            for dep in deps:
+                visit(dep, (*trail, name))
+            depth[name] = 1 + max((depth[d] for d in deps), default=0)
+            size[name] = sum(size[d] for d in deps) if deps else 1
+        first = trail[0] if trail else name
+        if len(trail) + depth[name] > MAX_NESTING + 1:
+            raise fail(
+                f"metrics are built of other metrics more than {MAX_NESTING} levels deep", first
+            )
+        if size[name] > MAX_PARTS:
+            raise fail(f"metric expands to more than {MAX_PARTS} per-unit parts", name)
+
+    for name in library:
+        visit(name, ())

@@ -57,13 +57,22 @@ class TomlFile:
         )
 
 
+MAX_TOML_BYTES = 1_000_000
+
+
 def read_toml(path: Path) -> TomlFile:
     try:
+        if path.is_file() and path.stat().st_size > MAX_TOML_BYTES:
+            raise SpecError(f"file is larger than {MAX_TOML_BYTES} bytes", file=str(path))
         raw = path.read_bytes()
     except FileNotFoundError:
         raise SpecError("file not found", file=str(path)) from None
     except OSError as err:
-        raise SpecError(f"cannot read file: {err.strerror}", file=str(path)) from None
+        raise SpecError(f"cannot read file: {err.strerror or err}", file=str(path)) from None
+    except ValueError as err:  # e.g. a NUL character in the path
+        raise SpecError(f"cannot read file: {err}", file=str(path)) from None
+    if len(raw) > MAX_TOML_BYTES:
+        raise SpecError(f"file is larger than {MAX_TOML_BYTES} bytes", file=str(path))
     try:
         text = raw.decode("utf-8")
     except UnicodeDecodeError:
@@ -76,6 +85,8 @@ def read_toml(path: Path) -> TomlFile:
         line = int(match.group(1)) if match else None
         message = re.sub(r"\s*\(at line \d+, column \d+\)", "", message)
         raise SpecError(f"malformed TOML: {message}", file=str(path), line=line) from None
+    except RecursionError:
+        raise SpecError("malformed TOML: nested too deeply", file=str(path)) from None
     return TomlFile(path=path, text=text, data=data)
 
 
@@ -128,7 +139,12 @@ class Section:
 
     def number(self, key: str, default: Any = None) -> Any:
         value = self._get(key, (int, float), "a number", default)
-        return float(value) if value is not None else None
+        if value is None:
+            return None
+        try:
+            return float(value)
+        except OverflowError:
+            raise self.error("number out of range", key) from None
 
     def flag(self, key: str, default: bool = False) -> bool:
         value: bool = self._get(key, bool, "true or false", default)

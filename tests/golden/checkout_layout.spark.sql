@@ -11,14 +11,26 @@ WITH first_exposure AS (
       THEN 'treatment'
       ELSE MIN(x.variant)
     END AS variant,
-    COUNT(DISTINCT x.variant) AS n_variants
-  FROM exposures AS x
-  WHERE
-    x.experiment = 'checkout_layout'
-    AND NOT x.unit_id IS NULL
-    AND NOT x.variant IS NULL
-    AND x.ts >= CAST('2026-09-15 00:00:00' AS TIMESTAMP)
-    AND x.ts < CAST('2026-09-29 00:00:00' AS TIMESTAMP)
+    COUNT(DISTINCT x.variant) AS n_variants,
+    CAST(SUM(x.n_rows) - COUNT(*) AS BIGINT) AS dq_duplicate_exposures
+  FROM (
+    SELECT
+      unit_id,
+      variant,
+      ts,
+      COUNT(*) AS n_rows
+    FROM exposures
+    WHERE
+      experiment = 'checkout_layout'
+      AND NOT unit_id IS NULL
+      AND NOT variant IS NULL
+      AND ts >= CAST('2026-09-15 00:00:00' AS TIMESTAMP)
+      AND ts < CAST('2026-09-29 00:00:00' AS TIMESTAMP)
+    GROUP BY
+      unit_id,
+      variant,
+      ts
+  ) AS x
   GROUP BY
     x.unit_id
 ), sessions AS (
@@ -27,6 +39,7 @@ WITH first_exposure AS (
     f.variant,
     f.n_variants,
     f.first_ts,
+    f.dq_duplicate_exposures,
     e.session_id AS session,
     COUNT(CASE WHEN e.ts >= f.first_ts THEN 1 END) AS n_events,
     COUNT(CASE WHEN NOT (
@@ -47,14 +60,52 @@ WITH first_exposure AS (
     ) AS bot_rule_0,
     SUM(
       CASE
-        WHEN e.event IN ('purchase') AND e.ts >= f.first_ts
+        WHEN (
+          e.event IN ('purchase') AND e.ts >= f.first_ts
+        )
+        AND (
+          ABS(CAST(e.value AS DOUBLE)) < 1e+18
+        )
         THEN CAST(e.value AS DECIMAL(38, 10))
       END
     ) AS s_revenue,
+    COUNT(
+      CASE
+        WHEN (
+          e.event IN ('purchase') AND e.ts >= f.first_ts
+        )
+        AND NOT (
+          e.value
+        ) IS NULL
+        AND NOT (
+          ABS(CAST(e.value AS DOUBLE)) < 1e+18
+        )
+        THEN 1
+      END
+    ) AS dq_ignored_revenue,
+    COUNT(
+      CASE
+        WHEN (
+          e.event IN ('purchase') AND e.ts >= f.first_ts
+        )
+        AND (
+          ABS(CAST(e.value AS DOUBLE)) < 1e+18
+        )
+        AND (
+          e.value
+        ) < 0
+        THEN 1
+      END
+    ) AS dq_negative_revenue,
     SUM(
       CASE
-        WHEN e.event IN ('purchase') AND NOT (
-          e.ts >= f.first_ts
+        WHEN (
+          e.event IN ('purchase') AND NOT (
+            e.ts >= f.first_ts
+          )
+        )
+        AND (
+          ABS(CAST(e.value AS DOUBLE)) < 1e+18
         )
         THEN CAST(e.value AS DECIMAL(38, 10))
       END
@@ -65,7 +116,12 @@ WITH first_exposure AS (
     ) THEN 1 END) AS spre_unsubscribes,
     SUM(
       CASE
-        WHEN e.event IN ('page_load') AND e.ts >= f.first_ts
+        WHEN (
+          e.event IN ('page_load') AND e.ts >= f.first_ts
+        )
+        AND (
+          ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
+        )
         THEN CAST(e.latency_ms AS DECIMAL(38, 10))
       END
     ) AS s_page_latency,
@@ -74,14 +130,49 @@ WITH first_exposure AS (
         WHEN (
           e.event IN ('page_load') AND e.ts >= f.first_ts
         )
-        AND NOT e.latency_ms IS NULL
+        AND (
+          ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
+        )
         THEN 1
       END
     ) AS c_page_latency,
+    COUNT(
+      CASE
+        WHEN (
+          e.event IN ('page_load') AND e.ts >= f.first_ts
+        )
+        AND NOT (
+          e.latency_ms
+        ) IS NULL
+        AND NOT (
+          ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
+        )
+        THEN 1
+      END
+    ) AS dq_ignored_page_latency,
+    COUNT(
+      CASE
+        WHEN (
+          e.event IN ('page_load') AND e.ts >= f.first_ts
+        )
+        AND (
+          ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
+        )
+        AND (
+          e.latency_ms
+        ) < 0
+        THEN 1
+      END
+    ) AS dq_negative_page_latency,
     SUM(
       CASE
-        WHEN e.event IN ('page_load') AND NOT (
-          e.ts >= f.first_ts
+        WHEN (
+          e.event IN ('page_load') AND NOT (
+            e.ts >= f.first_ts
+          )
+        )
+        AND (
+          ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
         )
         THEN CAST(e.latency_ms AS DECIMAL(38, 10))
       END
@@ -93,7 +184,9 @@ WITH first_exposure AS (
             e.ts >= f.first_ts
           )
         )
-        AND NOT e.latency_ms IS NULL
+        AND (
+          ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
+        )
         THEN 1
       END
     ) AS cpre_page_latency,
@@ -222,14 +315,52 @@ WITH first_exposure AS (
     END AS spre_session_success,
     SUM(
       CASE
-        WHEN e.event IN ('purchase') AND e.ts >= f.first_ts
+        WHEN (
+          e.event IN ('purchase') AND e.ts >= f.first_ts
+        )
+        AND (
+          ABS(CAST(e.value AS DOUBLE)) < 1e+18
+        )
         THEN CAST(e.value AS DECIMAL(38, 10))
       END
     ) AS s_revenue_winsorised,
+    COUNT(
+      CASE
+        WHEN (
+          e.event IN ('purchase') AND e.ts >= f.first_ts
+        )
+        AND NOT (
+          e.value
+        ) IS NULL
+        AND NOT (
+          ABS(CAST(e.value AS DOUBLE)) < 1e+18
+        )
+        THEN 1
+      END
+    ) AS dq_ignored_revenue_winsorised,
+    COUNT(
+      CASE
+        WHEN (
+          e.event IN ('purchase') AND e.ts >= f.first_ts
+        )
+        AND (
+          ABS(CAST(e.value AS DOUBLE)) < 1e+18
+        )
+        AND (
+          e.value
+        ) < 0
+        THEN 1
+      END
+    ) AS dq_negative_revenue_winsorised,
     SUM(
       CASE
-        WHEN e.event IN ('purchase') AND NOT (
-          e.ts >= f.first_ts
+        WHEN (
+          e.event IN ('purchase') AND NOT (
+            e.ts >= f.first_ts
+          )
+        )
+        AND (
+          ABS(CAST(e.value AS DOUBLE)) < 1e+18
         )
         THEN CAST(e.value AS DECIMAL(38, 10))
       END
@@ -250,6 +381,7 @@ WITH first_exposure AS (
     f.variant,
     f.n_variants,
     f.first_ts,
+    f.dq_duplicate_exposures,
     e.session_id
 ), units AS (
   SELECT
@@ -257,11 +389,18 @@ WITH first_exposure AS (
     variant,
     n_variants,
     first_ts,
+    dq_duplicate_exposures,
     CAST(SUM(n_events) AS BIGINT) AS n_events,
     MAX(n_events) AS max_session_events,
     COUNT(session) AS n_sessions,
     CAST(SUM(n_pre_events) AS BIGINT) AS n_pre_events,
     MAX(bot_rule_0) AS bot_rule_0,
+    CAST(SUM(dq_ignored_revenue) AS BIGINT) AS dq_ignored_revenue,
+    CAST(SUM(dq_negative_revenue) AS BIGINT) AS dq_negative_revenue,
+    CAST(SUM(dq_ignored_page_latency) AS BIGINT) AS dq_ignored_page_latency,
+    CAST(SUM(dq_negative_page_latency) AS BIGINT) AS dq_negative_page_latency,
+    CAST(SUM(dq_ignored_revenue_winsorised) AS BIGINT) AS dq_ignored_revenue_winsorised,
+    CAST(SUM(dq_negative_revenue_winsorised) AS BIGINT) AS dq_negative_revenue_winsorised,
     CAST(COALESCE(SUM(s_revenue), 0) AS DOUBLE) AS u_revenue,
     CAST(COALESCE(SUM(spre_revenue), 0) AS DOUBLE) AS upre_revenue,
     CAST(COALESCE(SUM(s_unsubscribes), 0) AS BIGINT) AS u_unsubscribes,
@@ -303,7 +442,8 @@ WITH first_exposure AS (
     unit,
     variant,
     n_variants,
-    first_ts
+    first_ts,
+    dq_duplicate_exposures
 )
 SELECT
   unit,
@@ -315,6 +455,13 @@ SELECT
   n_variants > 1 AS contaminated,
   n_variants > 1 AS two_variants,
   first_ts,
+  dq_duplicate_exposures,
+  dq_ignored_revenue,
+  dq_negative_revenue,
+  dq_ignored_page_latency,
+  dq_negative_page_latency,
+  dq_ignored_revenue_winsorised,
+  dq_negative_revenue_winsorised,
   n_pre_events > 0 AS has_pre,
   CAST(u_revenue AS DOUBLE) AS x_revenue,
   CAST(upre_revenue AS DOUBLE) AS xpre_revenue,
@@ -470,6 +617,24 @@ ORDER BY
   variant,
   is_bot,
   contaminated;
+
+-- data_quality
+SELECT
+  variant,
+  COUNT(*) AS units,
+  CAST(SUM(CASE WHEN n_events = 0 THEN 1 ELSE 0 END) AS BIGINT) AS units_without_events,
+  CAST(SUM(dq_duplicate_exposures) AS BIGINT) AS dq_duplicate_exposures,
+  CAST(SUM(dq_ignored_revenue) AS BIGINT) AS dq_ignored_revenue,
+  CAST(SUM(dq_negative_revenue) AS BIGINT) AS dq_negative_revenue,
+  CAST(SUM(dq_ignored_page_latency) AS BIGINT) AS dq_ignored_page_latency,
+  CAST(SUM(dq_negative_page_latency) AS BIGINT) AS dq_negative_page_latency,
+  CAST(SUM(dq_ignored_revenue_winsorised) AS BIGINT) AS dq_ignored_revenue_winsorised,
+  CAST(SUM(dq_negative_revenue_winsorised) AS BIGINT) AS dq_negative_revenue_winsorised
+FROM unit_rows
+GROUP BY
+  variant
+ORDER BY
+  variant;
 
 -- exposure_days
 SELECT
