@@ -13,54 +13,47 @@ from __future__ import annotations
 
 import sqlglot.expressions as exp
 
-from metricforge.compile.stitch import ordered_agg
+from metricforge.compile.sqlparts import (
+    BIGINT,
+    DOUBLE,
+    UNIT_TABLE,
+    aggregate,
+    analysed,
+    col,
+    lit,
+    one_if,
+)
 from metricforge.spec.model import Plan
 
-UNIT_TABLE = "unit_rows"
 BUCKET_DIGITS = 3  # hex digits of MD5(unit): 16**3 = 4096 buckets
 HEX = "0123456789abcdef"
-BIGINT = exp.DataType.build("BIGINT")
-DOUBLE = exp.DataType.build("DOUBLE")
-
-
-def _c(name: str) -> exp.Column:
-    return exp.column(name)
-
-
-def _n(value: int) -> exp.Expr:
-    return exp.Literal.number(value)
-
-
-def _one_if(cond: exp.Expr) -> exp.Expr:
-    return exp.Case().when(cond, _n(1)).else_(_n(0))
 
 
 def exposure_days() -> exp.Select:
-    day = exp.cast(_c("first_ts"), exp.DataType.build("DATE"))
+    day = exp.cast(col("first_ts"), exp.DataType.build("DATE"))
     return (
         exp.select(
-            _c("variant"),
+            col("variant"),
             exp.alias_(day, "first_day"),
             exp.alias_(exp.Count(this=exp.Star()), "n_units"),
-            exp.alias_(exp.cast(exp.Sum(this=_one_if(_c("two_variants"))), BIGINT), "n_two"),
+            exp.alias_(exp.cast(exp.Sum(this=one_if(col("two_variants"))), BIGINT), "n_two"),
         )
         .from_(UNIT_TABLE)
-        .group_by(_c("variant"), day.copy())
-        .order_by(_c("variant"), day.copy())
+        .group_by(col("variant"), day.copy())
+        .order_by(col("variant"), day.copy())
     )
 
 
 def bot_events(ordered: bool) -> exp.Select:
-    removed = exp.cast(exp.Case().when(_c("is_bot"), _c("n_events")).else_(_n(0)), DOUBLE)
-    events = exp.cast(_c("n_events"), DOUBLE)
-    by = _c("unit") if ordered else None
+    removed = exp.cast(exp.Case().when(col("is_bot"), col("n_events")).else_(lit(0)), DOUBLE)
+    events = exp.cast(col("n_events"), DOUBLE)
 
     def agg(cls: type[exp.Func], x: exp.Expr, y: exp.Expr | None = None) -> exp.Expr:
-        return ordered_agg(cls, x.copy(), y.copy() if y is not None else None, by)
+        return aggregate(cls, x.copy(), y.copy() if y is not None else None, ordered=ordered)
 
     return (
         exp.select(
-            _c("variant"),
+            col("variant"),
             exp.alias_(exp.Count(this=exp.Star()), "n_units"),
             exp.alias_(agg(exp.Avg, removed), "mean_removed"),
             exp.alias_(agg(exp.Avg, events), "mean_events"),
@@ -69,30 +62,30 @@ def bot_events(ordered: bool) -> exp.Select:
             exp.alias_(agg(exp.CovarSamp, removed, events), "cov_removed_events"),
         )
         .from_(UNIT_TABLE)
-        .group_by(_c("variant"))
-        .order_by(_c("variant"))
+        .group_by(col("variant"))
+        .order_by(col("variant"))
     )
 
 
 def identities() -> exp.Select:
-    several = _c("n_cookies") > _n(1)
+    several = col("n_cookies") > lit(1)
     return (
         exp.select(
-            _c("identity"),
+            col("identity"),
             exp.alias_(exp.Count(this=exp.Star()), "n_units"),
-            exp.alias_(exp.cast(exp.Sum(this=_c("n_cookies")), BIGINT), "n_cookies"),
-            exp.alias_(exp.cast(exp.Sum(this=_one_if(several)), BIGINT), "n_merged_units"),
+            exp.alias_(exp.cast(exp.Sum(this=col("n_cookies")), BIGINT), "n_cookies"),
+            exp.alias_(exp.cast(exp.Sum(this=one_if(several)), BIGINT), "n_merged_units"),
             exp.alias_(
                 exp.cast(
-                    exp.Sum(this=exp.Case().when(several.copy(), _c("n_cookies")).else_(_n(0))),
+                    exp.Sum(this=exp.Case().when(several.copy(), col("n_cookies")).else_(lit(0))),
                     BIGINT,
                 ),
                 "n_merged_cookies",
             ),
         )
         .from_(UNIT_TABLE)
-        .group_by(_c("identity"))
-        .order_by(_c("identity"))
+        .group_by(col("identity"))
+        .order_by(col("identity"))
     )
 
 
@@ -110,14 +103,14 @@ def bucket_of_unit() -> exp.Expr:
     Built from MD5, SUBSTRING and STRPOS only, which render to the same values in DuckDB
     and Spark (no base-conversion function is common to both).
     """
-    digest = exp.MD5(this=_c("unit"))
+    digest = exp.MD5(this=col("unit"))
     total: exp.Expr | None = None
     for k in range(BUCKET_DIGITS):
-        char = exp.Substring(this=digest.copy(), start=_n(k + 1), length=_n(1))
+        char = exp.Substring(this=digest.copy(), start=lit(k + 1), length=lit(1))
         digit = exp.Sub(
-            this=exp.StrPosition(this=exp.Literal.string(HEX), substr=char), expression=_n(1)
+            this=exp.StrPosition(this=exp.Literal.string(HEX), substr=char), expression=lit(1)
         )
-        term = exp.Mul(this=exp.paren(digit), expression=_n(16 ** (BUCKET_DIGITS - 1 - k)))
+        term = exp.Mul(this=exp.paren(digit), expression=lit(16 ** (BUCKET_DIGITS - 1 - k)))
         total = term if total is None else exp.Add(this=total, expression=term)
     assert total is not None
     return total
@@ -130,38 +123,42 @@ def bucket_moments(plan: Plan, period: str, ordered: bool) -> exp.Select:
     ``period`` is "" (experiment) or "pre" (the pre-period columns ``xpre_``/``ypre_``).
     """
     bucket = bucket_of_unit()
-    by = _c("unit") if ordered else None
     select = exp.select(
         exp.alias_(bucket, "bucket"), exp.alias_(exp.Count(this=exp.Star()), "n_units")
     )
     for name, _role in plan.reported:
         metric = plan.metric(name)
-        x = _c(f"x{period}_{name}")
+        x = col(f"x{period}_{name}")
         n = exp.Count(this=x.copy())
         select = select.select(
             exp.alias_(n, f"{name}__n"),
-            exp.alias_(ordered_agg(exp.Avg, x.copy(), None, by), f"{name}__mean_x"),
+            exp.alias_(aggregate(exp.Avg, x.copy(), ordered=ordered), f"{name}__mean_x"),
             exp.alias_(
-                exp.Mul(this=ordered_agg(exp.VariancePop, x.copy(), None, by), expression=n.copy()),
+                exp.Mul(
+                    this=aggregate(exp.VariancePop, x.copy(), ordered=ordered), expression=n.copy()
+                ),
                 f"{name}__m2_x",
             ),
         )
         if metric.is_ratio:
-            y = _c(f"y{period}_{name}")
+            y = col(f"y{period}_{name}")
             select = select.select(
-                exp.alias_(ordered_agg(exp.Avg, y.copy(), None, by), f"{name}__mean_y"),
+                exp.alias_(aggregate(exp.Avg, y.copy(), ordered=ordered), f"{name}__mean_y"),
                 exp.alias_(
                     exp.Mul(
-                        this=ordered_agg(exp.VariancePop, y.copy(), None, by), expression=n.copy()
+                        this=aggregate(exp.VariancePop, y.copy(), ordered=ordered),
+                        expression=n.copy(),
                     ),
                     f"{name}__m2_y",
                 ),
                 exp.alias_(
                     exp.Mul(
-                        this=ordered_agg(exp.CovarPop, x.copy(), y.copy(), by), expression=n.copy()
+                        this=aggregate(exp.CovarPop, x.copy(), y.copy(), ordered=ordered),
+                        expression=n.copy(),
                     ),
                     f"{name}__c_xy",
                 ),
             )
-    analysed = exp.and_(_c("is_bot").not_(), _c("contaminated").not_())
-    return select.from_(UNIT_TABLE).where(analysed).group_by(bucket.copy()).order_by(bucket.copy())
+    return (
+        select.from_(UNIT_TABLE).where(analysed()).group_by(bucket.copy()).order_by(bucket.copy())
+    )

@@ -17,7 +17,8 @@ from __future__ import annotations
 
 import sqlglot.expressions as exp
 
-from metricforge.compile.ranks import DOUBLE, ranked, value_at
+from metricforge.compile.ranks import ranked, value_at
+from metricforge.compile.sqlparts import DOUBLE, aggregate, analysed, with_ctes
 from metricforge.spec.model import Kind, MetricDef, Plan
 from metricforge.stats.quantiles import two_sided_z
 
@@ -32,25 +33,6 @@ def _lit(value: str | float) -> exp.Expr:
 
 def _double(e: exp.Expr) -> exp.Expr:
     return exp.cast(e, DOUBLE)
-
-
-def analysed() -> exp.Expr:
-    return exp.and_(exp.column("is_bot").not_(), exp.column("contaminated").not_())
-
-
-def aggregate(
-    cls: type[exp.Func], this: exp.Expr, other: exp.Expr | None = None, *, ordered: bool
-) -> exp.Expr:
-    """An aggregate; in DuckDB its input ordered by unit, so float sums are bit-stable."""
-
-    def order(e: exp.Expr) -> exp.Expr:
-        if not ordered:
-            return e
-        return exp.Order(this=e, expressions=[exp.Ordered(this=exp.column("unit"))])
-
-    if other is None:
-        return cls(this=order(this))
-    return cls(this=this, expression=order(other))
 
 
 # -- which metrics ---------------------------------------------------------------------------
@@ -153,12 +135,6 @@ def cap_ctes(plan: Plan, table: str) -> list[tuple[str, exp.Select]]:
         ("cap_levels", levels),
         (CAPS, pivot),
     ]
-
-
-def with_ctes(query: exp.Select, ctes: list[tuple[str, exp.Select]]) -> exp.Select:
-    for name, cte in ctes:
-        query = query.with_(name, as_=cte)
-    return query
 
 
 def caps_query(plan: Plan, table: str) -> exp.Select:
