@@ -6,13 +6,24 @@ bot_events      per variant, over every exposed unit: moments of the events the 
                 filter removed and of all events (the removed-event share, delta method)
 identities      with identity stitching: units and cookies per identity kind
 buckets         (A/A replay only, see ``bucket_moments``) per hash bucket of the unit id,
-                each reported metric's (n, mean, M2) of the analysed units
+                each replayable metric's count, means and M2 of its replay variables
+                over the analysed units
 """
 
 from __future__ import annotations
 
+import dataclasses
+
 import sqlglot.expressions as exp
 
+from metricforge.compile.extras import (
+    CAPS,
+    cap_ctes,
+    capped,
+    cuped_metrics,
+    cuped_variables,
+    reported,
+)
 from metricforge.compile.sqlparts import (
     BIGINT,
     DOUBLE,
@@ -22,11 +33,13 @@ from metricforge.compile.sqlparts import (
     col,
     lit,
     one_if,
+    with_ctes,
 )
-from metricforge.spec.model import Plan
+from metricforge.spec.model import Kind, MetricDef, Plan
 
 BUCKET_DIGITS = 3  # hex digits of MD5(unit): 16**3 = 4096 buckets
 HEX = "0123456789abcdef"
+REPLAY_UNITS = "replay_units"
 
 
 def exposure_days() -> exp.Select:
@@ -116,49 +129,83 @@ def bucket_of_unit() -> exp.Expr:
     return total
 
 
-def bucket_moments(plan: Plan, period: str, ordered: bool) -> exp.Select:
-    """Per hash bucket, over the analysed units: each reported metric's unit count, means
-    and sums of squared (cross) deviations from the bucket mean (M2 = n · population var).
+def replay_scope(plan: Plan, period: str) -> Plan:
+    """The plan whose rules a replay of ``period`` follows: an earlier period ("pre") has
+    no period before it to adjust by, so CUPED is off there (winsorising stays on, with
+    caps computed from that period's values)."""
+    if not period or not plan.spec.cuped:
+        return plan
+    return dataclasses.replace(plan, spec=dataclasses.replace(plan.spec, cuped=False))
 
-    ``period`` is "" (experiment) or "pre" (the pre-period columns ``xpre_``/``ypre_``).
+
+def replayable(plan: Plan) -> list[MetricDef]:
+    """The reported metrics a replay can re-randomise: every one but quantile metrics,
+    whose statistic is not a merge of per-unit moments."""
+    return [m for m in reported(plan) if m.kind is not Kind.QUANTILE]
+
+
+def replay_variables(plan: Plan, metric: MetricDef) -> list[tuple[str, exp.Expr]]:
+    """The per-unit variables whose bucket moments replay ``metric`` as the scorecard
+    computes it: with CUPED the outcome and covariates (``extras.cuped_variables``), else
+    x (capped when winsorised) and, for a ratio, y. ``plan`` is a ``replay_scope``."""
+    if metric.name in {m.name for m in cuped_metrics(plan)}:
+        return cuped_variables(metric)
+    found = [("x", capped(col(f"x_{metric.name}"), metric))]
+    if metric.is_ratio:
+        found.append(("y", col(f"y_{metric.name}")))
+    return found
+
+
+def bucket_column(metric: MetricDef, stat: str, a: str, b: str = "") -> str:
+    """``<metric>__n``, ``<metric>__mean_<a>``, ``<metric>__m2_<a>_<b>``."""
+    return "__".join([metric.name, "_".join(p for p in (stat, a, b) if p)])
+
+
+def bucket_moments(plan: Plan, period: str, ordered: bool) -> exp.Select:
+    """Per hash bucket, over the analysed units: for each replayable metric the count, the
+    means of its replay variables and their sums of squared and cross deviations from the
+    bucket means (M2 = n · population (co)variance).
+
+    ``period`` is "" (experiment) or "pre": then the pre-period columns (``xpre_``,
+    ``ypre_``) are read under the experiment's names from the CTE ``replay_units``, so that
+    caps and variables are built the same way for both periods.
     """
+    scope = replay_scope(plan, period)
+    source, ctes = UNIT_TABLE, []
+    if period:
+        renamed = exp.select(col("unit"), col("is_bot"), col("contaminated"))
+        for metric in replayable(plan):
+            names = ["x", "y"] if metric.is_ratio else ["x"]
+            renamed = renamed.select(
+                *[
+                    exp.alias_(col(f"{v}{period}_{metric.name}"), f"{v}_{metric.name}")
+                    for v in names
+                ]
+            )
+        source, ctes = REPLAY_UNITS, [(REPLAY_UNITS, renamed.from_(UNIT_TABLE))]
     bucket = bucket_of_unit()
     select = exp.select(
         exp.alias_(bucket, "bucket"), exp.alias_(exp.Count(this=exp.Star()), "n_units")
     )
-    for name, _role in plan.reported:
-        metric = plan.metric(name)
-        x = col(f"x{period}_{name}")
-        n = exp.Count(this=x.copy())
-        select = select.select(
-            exp.alias_(n, f"{name}__n"),
-            exp.alias_(aggregate(exp.Avg, x.copy(), ordered=ordered), f"{name}__mean_x"),
-            exp.alias_(
-                exp.Mul(
-                    this=aggregate(exp.VariancePop, x.copy(), ordered=ordered), expression=n.copy()
-                ),
-                f"{name}__m2_x",
-            ),
-        )
-        if metric.is_ratio:
-            y = col(f"y{period}_{name}")
-            select = select.select(
-                exp.alias_(aggregate(exp.Avg, y.copy(), ordered=ordered), f"{name}__mean_y"),
-                exp.alias_(
-                    exp.Mul(
-                        this=aggregate(exp.VariancePop, y.copy(), ordered=ordered),
-                        expression=n.copy(),
-                    ),
-                    f"{name}__m2_y",
-                ),
-                exp.alias_(
-                    exp.Mul(
-                        this=aggregate(exp.CovarPop, x.copy(), y.copy(), ordered=ordered),
-                        expression=n.copy(),
-                    ),
-                    f"{name}__c_xy",
-                ),
-            )
-    return (
-        select.from_(UNIT_TABLE).where(analysed()).group_by(bucket.copy()).order_by(bucket.copy())
-    )
+    for metric in replayable(plan):
+        variables = replay_variables(scope, metric)
+        n = exp.Count(this=variables[0][1].copy())
+        select = select.select(exp.alias_(n, bucket_column(metric, "n", "")))
+        for a, va in variables:
+            mean = aggregate(exp.Avg, va.copy(), ordered=ordered)
+            select = select.select(exp.alias_(mean, bucket_column(metric, "mean", a)))
+        for i, (a, va) in enumerate(variables):
+            for b, vb in variables[i:]:
+                spread = (
+                    aggregate(exp.VariancePop, va.copy(), ordered=ordered)
+                    if a == b
+                    else aggregate(exp.CovarPop, va.copy(), vb.copy(), ordered=ordered)
+                )
+                m2 = exp.Mul(this=spread, expression=n.copy())
+                select = select.select(exp.alias_(m2, bucket_column(metric, "m2", a, b)))
+    query = select.from_(source)
+    caps = cap_ctes(scope, source)
+    if caps:
+        query = query.join(exp.to_table(CAPS), join_type="cross")
+    query = query.where(analysed()).group_by(bucket.copy()).order_by(bucket.copy())
+    return with_ctes(query, ctes + caps)
