@@ -11,6 +11,7 @@ import hashlib
 import json
 import math
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
@@ -63,6 +64,15 @@ def arm(m: Moments) -> ArmMoments:
     return ArmMoments(("x", "y"), np.array([m.n]), np.array([[m.mean_x, m.mean_y]]), cov)
 
 
+def assert_scorecard_p_value(
+    t: Moments, c: Moments, test: tuple[int, float | None], proportion: bool = False
+) -> None:
+    side, margin = test
+    (got,) = p_values([arm(c), arm(t)], proportion=proportion, side=side, margin=margin)
+    expected = compare(t, c, side=side, margin=margin).p_value
+    assert got[0] == pytest.approx(expected, rel=1e-9, abs=1e-300)
+
+
 @settings(max_examples=200, deadline=None)
 @given(
     n=st.tuples(st.integers(2, 10**6), st.integers(2, 10**6)),
@@ -77,10 +87,7 @@ def test_replay_p_values_of_means_are_the_scorecard_p_values(
     test: tuple[int, float | None],
 ) -> None:
     t, c = (Moments.of_mean(n[k], mean[k], var[k]) for k in (0, 1))
-    side, margin = test
-    (got,) = p_values([arm(c), arm(t)], side=side, margin=margin)
-    expected = compare(t, c, side=side, margin=margin).p_value
-    assert got[0] == pytest.approx(expected, rel=1e-9, abs=1e-300)
+    assert_scorecard_p_value(t, c, test)
 
 
 @settings(max_examples=200, deadline=None)
@@ -105,10 +112,7 @@ def test_replay_p_values_of_ratios_are_the_scorecard_p_values(
     t, c = (
         Moments(n[k], mx[k], my[k], vx[k], vy[k], rho[k] * math.sqrt(vx[k] * vy[k])) for k in (0, 1)
     )
-    side, margin = test
-    (got,) = p_values([arm(c), arm(t)], side=side, margin=margin)
-    expected = compare(t, c, side=side, margin=margin).p_value
-    assert got[0] == pytest.approx(expected, rel=1e-9, abs=1e-300)
+    assert_scorecard_p_value(t, c, test)
 
 
 @settings(max_examples=100, deadline=None)
@@ -122,10 +126,7 @@ def test_replay_p_values_of_proportions_are_the_scorecard_p_values(
 ) -> None:
     """Counts from merged means (n · mean), then z, Fisher or Wald as the scorecard."""
     t, c = (Moments.of_proportion(n[k], round(share[k] * n[k])) for k in (0, 1))
-    side, margin = test
-    (got,) = p_values([arm(c), arm(t)], proportion=True, side=side, margin=margin)
-    expected = compare(t, c, side=side, margin=margin).p_value
-    assert got[0] == pytest.approx(expected, rel=1e-9, abs=1e-300)
+    assert_scorecard_p_value(t, c, test, proportion=True)
 
 
 @pytest.mark.parametrize("seed", [1, 2, 3])
@@ -337,21 +338,16 @@ def test_demo_pre_period_is_calibrated_and_a_wrong_variance_is_not(
     assert wrong["revenue"]["treatment"] == right["revenue"]["treatment"]
 
 
-def test_aa_command_prints_every_metric(tmp_path: Path) -> None:
-    result = CliRunner().invoke(
-        app,
-        [
-            "aa",
-            str(PIPELINES / "homepage_aa.toml"),
-            "--replays",
-            "50",
-            "--period",
-            "experiment",
-            "--json",
-        ],
-    )
+def aa_json(pipeline: str, *options: str) -> dict[str, Any]:
+    """The JSON report of `metricforge aa` on a demo pipeline."""
+    result = CliRunner().invoke(app, ["aa", str(PIPELINES / pipeline), *options, "--json"])
     assert result.exit_code == 0, result.output
-    report = json.loads(result.stdout)
+    report: dict[str, Any] = json.loads(result.stdout)
+    return report
+
+
+def test_aa_command_prints_every_metric(tmp_path: Path) -> None:
+    report = aa_json("homepage_aa.toml", "--replays", "50", "--period", "experiment")
     plan = load_plan(PIPELINES / "homepage_aa.toml")
     shown = [r["metric"] for r in report["rows"]] + [r["metric"] for r in report["skipped"]]
     assert sorted(shown) == sorted(name for name, _ in plan.reported)

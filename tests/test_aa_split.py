@@ -10,7 +10,6 @@ one-sided harm guardrail and a non-inferiority guardrail with a margin.
 from __future__ import annotations
 
 import hashlib
-import json
 from pathlib import Path
 from typing import Any
 
@@ -36,6 +35,7 @@ from metricforge.sample import EXPOSURE_SCHEMA
 from metricforge.spec import load_plan
 from metricforge.stats.replay import BucketSplitter, assign, bucket_hashes
 from tests.conftest import PIPELINES, SAMPLE
+from tests.test_aa import aa_json
 
 REPLAY = 5  # any replay
 SEED = 1
@@ -111,20 +111,7 @@ def test_a_replay_of_proportions_without_cuped_is_the_scorecard_p_value(tmp_path
 
 
 def test_the_report_names_what_it_replays_and_what_it_cannot() -> None:
-    result = CliRunner().invoke(
-        app,
-        [
-            "aa",
-            str(PIPELINES / "checkout_layout.toml"),
-            "--replays",
-            "40",
-            "--period",
-            "experiment",
-            "--json",
-        ],
-    )
-    assert result.exit_code == 0, result.output
-    report = json.loads(result.stdout)
+    report = aa_json("checkout_layout.toml", "--replays", "40", "--period", "experiment")
     rows = {r["metric"]: r for r in report["rows"]}
     assert rows["page_latency"]["margin"] == 0.02
     assert rows["page_latency"]["verdict"] == NOT_JUDGED
@@ -132,11 +119,7 @@ def test_the_report_names_what_it_replays_and_what_it_cannot() -> None:
     assert {r["statistic"] for r in rows.values()} == {"cuped-adjusted"}
     assert [s["metric"] for s in report["skipped"]] == ["page_latency_p95"]
     assert any(n.startswith("CUPED: metrics are replayed adjusted") for n in report["notes"])
-    pre = CliRunner().invoke(
-        app, ["aa", str(PIPELINES / "checkout_layout.toml"), "--replays", "40", "--json"]
-    )
-    assert pre.exit_code == 0, pre.output
-    report = json.loads(pre.stdout)
+    report = aa_json("checkout_layout.toml", "--replays", "40")
     assert {r["statistic"] for r in report["rows"]} == {"unadjusted"}
     assert any("checks the unadjusted variance" in n for n in report["notes"])
     shown = CliRunner().invoke(

@@ -32,6 +32,7 @@ from metricforge.compile.sqlparts import (
     analysed,
     col,
     lit,
+    moment_aggregates,
     one_if,
     with_ctes,
 )
@@ -156,7 +157,7 @@ def replay_variables(plan: Plan, metric: MetricDef) -> list[tuple[str, exp.Expr]
     return found
 
 
-def bucket_column(metric: MetricDef, stat: str, a: str, b: str = "") -> str:
+def bucket_column(metric: MetricDef, stat: str, a: str = "", b: str = "") -> str:
     """``<metric>__n``, ``<metric>__mean_<a>``, ``<metric>__m2_<a>_<b>``."""
     return "__".join([metric.name, "_".join(p for p in (stat, a, b) if p)])
 
@@ -189,20 +190,12 @@ def bucket_moments(plan: Plan, period: str, ordered: bool) -> exp.Select:
     )
     for metric in replayable(plan):
         variables = replay_variables(scope, metric)
-        n = exp.Count(this=variables[0][1].copy())
-        select = select.select(exp.alias_(n, bucket_column(metric, "n", "")))
-        for a, va in variables:
-            mean = aggregate(exp.Avg, va.copy(), ordered=ordered)
-            select = select.select(exp.alias_(mean, bucket_column(metric, "mean", a)))
-        for i, (a, va) in enumerate(variables):
-            for b, vb in variables[i:]:
-                spread = (
-                    aggregate(exp.VariancePop, va.copy(), ordered=ordered)
-                    if a == b
-                    else aggregate(exp.CovarPop, va.copy(), vb.copy(), ordered=ordered)
-                )
-                m2 = exp.Mul(this=spread, expression=n.copy())
-                select = select.select(exp.alias_(m2, bucket_column(metric, "m2", a, b)))
+        parts = moment_aggregates(variables, ordered=ordered, population=True)
+        n = parts[0][3]
+        for stat, a, b, agg in parts:
+            if stat == "cov":  # M2 = n · population (co)variance
+                stat, agg = "m2", exp.Mul(this=agg, expression=n.copy())
+            select = select.select(exp.alias_(agg, bucket_column(metric, stat, a, b)))
     query = select.from_(source)
     caps = cap_ctes(scope, source)
     if caps:

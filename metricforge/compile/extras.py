@@ -18,7 +18,13 @@ from __future__ import annotations
 import sqlglot.expressions as exp
 
 from metricforge.compile.ranks import ranked, value_at
-from metricforge.compile.sqlparts import DOUBLE, aggregate, analysed, with_ctes
+from metricforge.compile.sqlparts import (
+    DOUBLE,
+    aggregate,
+    analysed,
+    moment_aggregates,
+    with_ctes,
+)
 from metricforge.spec.model import Kind, MetricDef, Plan
 from metricforge.stats.quantiles import two_sided_z
 
@@ -176,24 +182,8 @@ def cuped_column(metric: MetricDef, stat: str, a: str = "", b: str = "") -> str:
 def cuped_query(plan: Plan, table: str, *, ordered: bool) -> exp.Select:
     select = exp.select(exp.column("variant"))
     for metric in cuped_metrics(plan):
-        variables = cuped_variables(metric)
-        select = select.select(
-            exp.alias_(exp.Count(this=variables[0][1].copy()), cuped_column(metric, "n"))
-        )
-        for a, va in variables:
-            select = select.select(
-                exp.alias_(
-                    aggregate(exp.Avg, va.copy(), ordered=ordered), cuped_column(metric, "mean", a)
-                )
-            )
-        for i, (a, va) in enumerate(variables):
-            for b, vb in variables[i:]:
-                agg = (
-                    aggregate(exp.Variance, va.copy(), ordered=ordered)
-                    if a == b
-                    else aggregate(exp.CovarSamp, va.copy(), vb.copy(), ordered=ordered)
-                )
-                select = select.select(exp.alias_(agg, cuped_column(metric, "cov", a, b)))
+        for stat, a, b, agg in moment_aggregates(cuped_variables(metric), ordered=ordered):
+            select = select.select(exp.alias_(agg, cuped_column(metric, stat, a, b)))
     source: exp.Select = select.from_(table)
     ctes = cap_ctes(plan, table)
     if ctes:

@@ -69,6 +69,29 @@ def aggregate(
     return cls(this=this) if other is None else cls(this=this, expression=other)
 
 
+def moment_aggregates(
+    variables: list[tuple[str, exp.Expr]], *, ordered: bool, population: bool = False
+) -> list[tuple[str, str, str, exp.Expr]]:
+    """(stat, a, b, aggregate) of named per-unit variables: ("n", "", "", count of the
+    first), ("mean", a, "", mean of a) per variable, ("cov", a, b, (co)variance) per pair
+    a ≤ b in order; divisor n − 1, or n with ``population``."""
+    out: list[tuple[str, str, str, exp.Expr]] = [
+        ("n", "", "", exp.Count(this=variables[0][1].copy()))
+    ]
+    for a, va in variables:
+        out.append(("mean", a, "", aggregate(exp.Avg, va.copy(), ordered=ordered)))
+    var, cov = (exp.VariancePop, exp.CovarPop) if population else (exp.Variance, exp.CovarSamp)
+    for i, (a, va) in enumerate(variables):
+        for b, vb in variables[i:]:
+            agg = (
+                aggregate(var, va.copy(), ordered=ordered)
+                if a == b
+                else aggregate(cov, va.copy(), vb.copy(), ordered=ordered)
+            )
+            out.append(("cov", a, b, agg))
+    return out
+
+
 def sorted_concat(lists: exp.Expr) -> exp.Expr:
     """An aggregate: the non-NULL lists of the group concatenated and sorted ascending."""
     kept = exp.Where(this=lists.is_(exp.null()).not_())
