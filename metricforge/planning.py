@@ -36,9 +36,14 @@ from metricforge.compile.query import CompiledRun, compile_plan
 from metricforge.engines.base import Engine
 from metricforge.errors import InputDataError, SpecError, StatsError
 from metricforge.runner import gather_inputs
-from metricforge.spec.model import Plan, Role
+from metricforge.spec.model import Kind, Plan, Role
 from metricforge.stats.moments import Moments, ratio_point_and_variance
 from metricforge.stats.power import detectable_effect, linearised_correlation, units_needed
+
+NOT_PLANNED = (
+    "not planned: a quantile metric's spread is not a per-unit moment (its scorecard CI is"
+    " the outer CI of the pooled values)"
+)
 
 
 @dataclass(frozen=True)
@@ -119,6 +124,8 @@ def _metric_plan(
     mde: float | None, days: int | None, power: float,
 ) -> MetricPlan:  # fmt: skip
     metric = plan.metric(name)
+    if metric.kind is Kind.QUANTILE:  # its history columns count values, no latency
+        return MetricPlan(name, role.value, math.nan, math.nan, math.nan, note=NOT_PLANNED)
     p = f"{name}__"
     n = int(row.get(p + "n") or 0)
     mean_y, var_y, cov_xy = 1.0, 0.0, 0.0
@@ -136,7 +143,8 @@ def _metric_plan(
     w_c = shares[spec.control]
     arms = [shares[v] for v in spec.variant_names[1:]]
     alpha = spec.alpha / len(arms) if role is Role.DECISION else spec.alpha
-    out = MetricPlan(name, role.value, baseline, sd, rho)
+    uncapped = "sized on uncapped values: winsorising is not applied to the history"
+    out = MetricPlan(name, role.value, baseline, sd, rho, note=uncapped if metric.winsorise else "")
     if baseline == 0 or not sd > 0:
         return dataclasses.replace(out, note="no relative effect: baseline 0 or no variance")
     for suffix, s in (("", sd), ("_cuped", sd * math.sqrt(1.0 - rho * rho))):

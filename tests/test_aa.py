@@ -11,6 +11,7 @@ import hashlib
 import json
 import math
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
@@ -34,6 +35,7 @@ from metricforge.runner import gather_inputs
 from metricforge.spec import load_plan
 from metricforge.stats import Moments, compare
 from metricforge.stats.calibration import Verdict, calibration, exact_interval
+from metricforge.stats.cuped import PER_UNIT, RATIO, cuped_compare
 from metricforge.stats.replay import (
     ArmMoments,
     BucketMoments,
@@ -43,21 +45,32 @@ from metricforge.stats.replay import (
     p_values,
 )
 from tests.conftest import PIPELINES, event, exposure, write_case
+from tests.test_cuped import per_unit_data, ratio_data
+from tests.test_cuped import vectors as cuped_vectors
 from tests.test_nist_pipeline import nist_values
 
 # --------------------------------------------------------------------------- p-values
 
 finite = st.floats(min_value=-1e3, max_value=1e3, allow_nan=False)
 positive = st.floats(min_value=1e-3, max_value=1e3, allow_nan=False)
+hypotheses = st.sampled_from([(0, None), (1, None), (-1, None), (1, 0.05), (-1, 0.2)])
 
 
-def arrays(m: Moments, ratio: bool) -> ArmMoments:
-    one = lambda v: np.array([float(v)])  # noqa: E731
-    if not ratio:
-        return ArmMoments(n=one(m.n), mean_x=one(m.mean_x), var_x=one(m.var_x))
-    return ArmMoments(
-        one(m.n), one(m.mean_x), one(m.var_x), one(m.mean_y), one(m.var_y), one(m.cov_xy)
-    )
+def arm(m: Moments) -> ArmMoments:
+    """One replay's arm holding the moments ``m`` (x, and y for a ratio)."""
+    if not m.is_ratio:
+        return ArmMoments(("x",), np.array([m.n]), np.array([[m.mean_x]]), np.array([[[m.var_x]]]))
+    cov = np.array([[[m.var_x, m.cov_xy], [m.cov_xy, m.var_y]]])
+    return ArmMoments(("x", "y"), np.array([m.n]), np.array([[m.mean_x, m.mean_y]]), cov)
+
+
+def assert_scorecard_p_value(
+    t: Moments, c: Moments, test: tuple[int, float | None], proportion: bool = False
+) -> None:
+    side, margin = test
+    (got,) = p_values([arm(c), arm(t)], proportion=proportion, side=side, margin=margin)
+    expected = compare(t, c, side=side, margin=margin).p_value
+    assert got[0] == pytest.approx(expected, rel=1e-9, abs=1e-300)
 
 
 @settings(max_examples=200, deadline=None)
@@ -65,13 +78,16 @@ def arrays(m: Moments, ratio: bool) -> ArmMoments:
     n=st.tuples(st.integers(2, 10**6), st.integers(2, 10**6)),
     mean=st.tuples(finite, finite),
     var=st.tuples(positive, positive),
+    test=hypotheses,
 )
-def test_vectorised_welch_equals_the_scorecard(
-    n: tuple[int, int], mean: tuple[float, float], var: tuple[float, float]
+def test_replay_p_values_of_means_are_the_scorecard_p_values(
+    n: tuple[int, int],
+    mean: tuple[float, float],
+    var: tuple[float, float],
+    test: tuple[int, float | None],
 ) -> None:
     t, c = (Moments.of_mean(n[k], mean[k], var[k]) for k in (0, 1))
-    got = p_values(arrays(t, False), arrays(c, False))[0]
-    assert got == pytest.approx(compare(t, c).p_value, rel=1e-9, abs=1e-300)
+    assert_scorecard_p_value(t, c, test)
 
 
 @settings(max_examples=200, deadline=None)
@@ -82,20 +98,62 @@ def test_vectorised_welch_equals_the_scorecard(
     vx=st.tuples(positive, positive),
     vy=st.tuples(positive, positive),
     rho=st.tuples(st.floats(-0.99, 0.99), st.floats(-0.99, 0.99)),
+    test=hypotheses,
 )
-def test_vectorised_delta_method_equals_the_scorecard(
+def test_replay_p_values_of_ratios_are_the_scorecard_p_values(
     n: tuple[int, int],
     mx: tuple[float, float],
     my: tuple[float, float],
     vx: tuple[float, float],
     vy: tuple[float, float],
     rho: tuple[float, float],
+    test: tuple[int, float | None],
 ) -> None:
     t, c = (
         Moments(n[k], mx[k], my[k], vx[k], vy[k], rho[k] * math.sqrt(vx[k] * vy[k])) for k in (0, 1)
     )
-    got = p_values(arrays(t, True), arrays(c, True))[0]
-    assert got == pytest.approx(compare(t, c).p_value, rel=1e-9, abs=1e-300)
+    assert_scorecard_p_value(t, c, test)
+
+
+@settings(max_examples=100, deadline=None)
+@given(
+    n=st.tuples(st.integers(2, 5000), st.integers(2, 5000)),
+    share=st.tuples(st.floats(0, 1), st.floats(0, 1)),
+    test=hypotheses,
+)
+def test_replay_p_values_of_proportions_are_the_scorecard_p_values(
+    n: tuple[int, int], share: tuple[float, float], test: tuple[int, float | None]
+) -> None:
+    """Counts from merged means (n · mean), then z, Fisher or Wald as the scorecard."""
+    t, c = (Moments.of_proportion(n[k], round(share[k] * n[k])) for k in (0, 1))
+    assert_scorecard_p_value(t, c, test, proportion=True)
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+@pytest.mark.parametrize("test", [(0, None), (1, None), (-1, 0.1)])
+@pytest.mark.parametrize("names", [PER_UNIT, RATIO])
+def test_replay_p_values_with_cuped_are_the_scorecard_p_values(
+    seed: int, test: tuple[int, float | None], names: tuple[str, ...]
+) -> None:
+    """Three variants: θ is pooled over all of them, in the replay as in the scorecard."""
+    rng = np.random.default_rng(seed)
+    data = [
+        ratio_data(rng, 400 + 50 * k, 0.02 * k)
+        if names == RATIO
+        else per_unit_data(rng, 400 + 50 * k, 0.1 * k)
+        for k in range(3)
+    ]
+    vectors = {f"v{k}": cuped_vectors(d, names) for k, d in enumerate(data)}
+    arms = [
+        ArmMoments(names, np.array([float(v.n)]), np.array([v.mean]), np.array([v.cov]))
+        for v in vectors.values()
+    ]
+    side, margin = test
+    got = p_values(arms, side=side, margin=margin)
+    for k in (1, 2):
+        effect = cuped_compare(vectors, f"v{k}", "v0", side=side, margin=margin).effect
+        assert effect.method.endswith("+cuped")
+        assert got[k - 1][0] == pytest.approx(effect.p_value, rel=1e-9, abs=1e-300)
 
 
 # --------------------------------------------------------------------------- merging
@@ -105,14 +163,15 @@ def buckets_of(x: np.ndarray, y: np.ndarray | None, bucket: np.ndarray) -> Bucke
     """Bucket moments computed directly (two-pass, per bucket) with numpy."""
     n = np.bincount(bucket, minlength=N_BUCKETS).astype(float)
     safe = np.maximum(n, 1)
-    mx = np.bincount(bucket, weights=x, minlength=N_BUCKETS) / safe
-    m2x = np.bincount(bucket, weights=(x - mx[bucket]) ** 2, minlength=N_BUCKETS)
-    if y is None:
-        return BucketMoments(n, mx, m2x)
-    my = np.bincount(bucket, weights=y, minlength=N_BUCKETS) / safe
-    m2y = np.bincount(bucket, weights=(y - my[bucket]) ** 2, minlength=N_BUCKETS)
-    cxy = np.bincount(bucket, weights=(x - mx[bucket]) * (y - my[bucket]), minlength=N_BUCKETS)
-    return BucketMoments(n, mx, m2x, my, m2y, cxy)
+    values = [x] if y is None else [x, y]
+    means = [np.bincount(bucket, weights=v, minlength=N_BUCKETS) / safe for v in values]
+    k = len(values)
+    m2 = np.zeros((N_BUCKETS, k, k))
+    for i in range(k):
+        for j in range(k):
+            product = (values[i] - means[i][bucket]) * (values[j] - means[j][bucket])
+            m2[:, i, j] = np.bincount(bucket, weights=product, minlength=N_BUCKETS)
+    return BucketMoments(("x",) if y is None else ("x", "y"), n, np.column_stack(means), m2)
 
 
 @pytest.mark.parametrize("offset", [0.0, 1e6, 1e9])
@@ -134,12 +193,12 @@ def test_merged_bucket_moments_equal_direct_moments(offset: float) -> None:
             xs, ys = x[mine], y[mine]
             got = moments[v]
             assert got.n[r] == mine.sum()
-            assert got.mean_x[r] == pytest.approx(xs.mean(), rel=1e-14)
-            assert got.var_x[r] == pytest.approx(xs.var(ddof=1), rel=tol)
-            assert got.mean_y is not None and got.var_y is not None and got.cov_xy is not None
-            assert got.mean_y[r] == pytest.approx(ys.mean(), rel=1e-12)
-            assert got.var_y[r] == pytest.approx(ys.var(ddof=1), rel=1e-9)
-            assert got.cov_xy[r] == pytest.approx(np.cov(xs, ys)[0, 1], rel=tol)
+            assert got.mean_of("x")[r] == pytest.approx(xs.mean(), rel=1e-14)
+            assert got.cov_of("x", "x")[r] == pytest.approx(xs.var(ddof=1), rel=tol)
+            assert got.mean_of("y")[r] == pytest.approx(ys.mean(), rel=1e-12)
+            assert got.cov_of("y", "y")[r] == pytest.approx(ys.var(ddof=1), rel=1e-9)
+            assert got.cov_of("x", "y")[r] == pytest.approx(np.cov(xs, ys)[0, 1], rel=tol)
+            assert got.cov_of("y", "x")[r] == got.cov_of("x", "y")[r]
     if offset >= 1e9:  # raw power sums lose the variance entirely here
         raw = (np.sum(x * x) - np.sum(x) ** 2 / units) / (units - 1)
         assert abs(raw / x.var(ddof=1) - 1) > 0.1
@@ -164,14 +223,15 @@ def test_nist_values_survive_the_bucket_query_and_the_merge(
     plan = load_plan(write_case(tmp_path, events, exposures, decision="revenue"))
     inputs, _ = gather_inputs(plan)
     table = DuckDBEngine().run(compiled_replay(plan, Period.EXPERIMENT, "duckdb"), inputs)
-    buckets, units = bucket_arrays(plan, table["buckets"])
+    buckets, units = bucket_arrays(plan, table["buckets"], Period.EXPERIMENT)
     everything = np.zeros((1, N_BUCKETS), dtype=np.int8)
     one = BucketSplitter(buckets).split(everything, 2)["revenue"][0]
     n = len(values)
     assert units == one.n[0] == 2 * n
-    assert one.mean_x[0] == pytest.approx(mean, rel=1e-12)
+    assert one.mean_of("x")[0] == pytest.approx(mean, rel=1e-12)
     # the file twice: the sum of squares doubles, the divisor is 2n - 1
-    assert one.var_x[0] == pytest.approx(sd**2 * 2 * (n - 1) / (2 * n - 1), rel=2 * tol_sd)
+    expected = sd**2 * 2 * (n - 1) / (2 * n - 1)
+    assert one.cov_of("x", "x")[0] == pytest.approx(expected, rel=2 * tol_sd)
 
 
 # --------------------------------------------------------------------------- hashing
@@ -255,7 +315,7 @@ def demo_buckets() -> tuple[object, dict[str, BucketMoments]]:
     scan = replay_plan(plan, Period.PRE)
     inputs, _ = gather_inputs(scan)
     table = DuckDBEngine().run(compiled_replay(scan, Period.PRE, "duckdb"), inputs)
-    return plan, bucket_arrays(plan, table["buckets"])[0]
+    return plan, bucket_arrays(plan, table["buckets"], Period.PRE)[0]
 
 
 @pytest.mark.slow
@@ -265,6 +325,7 @@ def test_demo_pre_period_is_calibrated_and_a_wrong_variance_is_not(
     """Common practice: at alpha = 5% about 5% of A/A comparisons are significant."""
     plan, buckets = demo_buckets
     right = replay(plan, buckets, replays=1000, seed=1)  # type: ignore[arg-type]
+    assert "page_latency_p95" not in right  # a quantile is not replayable
     for name, by_variant in right.items():
         assert by_variant["treatment"].verdict is Verdict.CALIBRATED, name
     # click_through as if impressions were independent: the variance ignores that one
@@ -277,23 +338,21 @@ def test_demo_pre_period_is_calibrated_and_a_wrong_variance_is_not(
     assert wrong["revenue"]["treatment"] == right["revenue"]["treatment"]
 
 
-def test_aa_command_prints_every_metric(tmp_path: Path) -> None:
-    result = CliRunner().invoke(
-        app,
-        [
-            "aa",
-            str(PIPELINES / "homepage_aa.toml"),
-            "--replays",
-            "50",
-            "--period",
-            "experiment",
-            "--json",
-        ],
-    )
+def aa_json(pipeline: str, *options: str) -> dict[str, Any]:
+    """The JSON report of `metricforge aa` on a demo pipeline."""
+    result = CliRunner().invoke(app, ["aa", str(PIPELINES / pipeline), *options, "--json"])
     assert result.exit_code == 0, result.output
-    report = json.loads(result.stdout)
+    report: dict[str, Any] = json.loads(result.stdout)
+    return report
+
+
+def test_aa_command_prints_every_metric(tmp_path: Path) -> None:
+    report = aa_json("homepage_aa.toml", "--replays", "50", "--period", "experiment")
     plan = load_plan(PIPELINES / "homepage_aa.toml")
-    assert [r["metric"] for r in report["rows"]] == [name for name, _ in plan.reported]
+    shown = [r["metric"] for r in report["rows"]] + [r["metric"] for r in report["skipped"]]
+    assert sorted(shown) == sorted(name for name, _ in plan.reported)
+    assert [r["metric"] for r in report["skipped"]] == ["page_latency_p95"]
+    assert "not replayable" in report["skipped"][0]["reason"]
     assert report["period"] == "experiment" and report["replays"] == 50
     assert all(r["replays"] == 50 and 0 <= r["share"] <= 1 for r in report["rows"])
     bad = CliRunner().invoke(app, ["aa", str(PIPELINES / "homepage_aa.toml"), "--period", "post"])

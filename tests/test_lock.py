@@ -78,6 +78,62 @@ def test_a_spec_changed_after_the_lock_fails(
     assert any(finding in c for c in result["changes"]), result["changes"]
 
 
+ADJUSTED = (
+    "window_days = 14\npre_period_days = 14\ncuped = true",
+    'guardrails = ["unsubscribes"]\nguardrail_margins = { unsubscribes = 0.05 }',
+)
+
+
+@pytest.mark.parametrize(
+    ("edit", "finding"),
+    [
+        (
+            ("unsubscribes = 0.05", "unsubscribes = 0.1"),
+            "margin of guardrail 'unsubscribes' changed from 5% to 10%",
+        ),
+        (
+            ("guardrail_margins = { unsubscribes = 0.05 }", ""),
+            "margin of guardrail 'unsubscribes' changed from 5% to none",
+        ),
+        (("cuped = true", "cuped = false"), "CUPED turned off"),
+        (("pre_period_days = 14", "pre_period_days = 7"), "pre_period_days changed from 14 to 7"),
+    ],
+    ids=["margin", "margin-removed", "cuped", "pre-period"],
+)
+def test_margins_cuped_and_pre_period_changed_after_the_lock_fail(
+    tmp_path: Path, edit: tuple[str, str], finding: str
+) -> None:
+    spec = case(tmp_path)
+    text = spec.read_text()
+    text = text.replace("window_days = 14", ADJUSTED[0]).replace("guardrails = []", ADJUSTED[1])
+    spec.write_text(text)
+    write_lock(load_plan(spec), BEFORE)
+    lock = json.loads(lock_path(spec).read_text())
+    assert lock["guardrail_margins"] == {"unsubscribes": 0.05}
+    assert lock["cuped"] is True and lock["pre_period_days"] == 14
+    assert lock_check(load_plan(spec))["status"] == "pass"
+    spec.write_text(text.replace(*edit))
+    result = lock_check(load_plan(spec))
+    assert result["status"] == "fail"
+    assert result["changes"] == [finding]
+
+
+def test_a_lock_without_margins_cuped_and_pre_period_is_compared_on_what_it_holds(
+    tmp_path: Path,
+) -> None:
+    """A lock written before those were recorded: its other keys are still compared."""
+    spec = case(tmp_path)
+    spec.write_text(spec.read_text().replace("window_days = 14", ADJUSTED[0]))
+    write_lock(load_plan(spec), BEFORE)
+    lock = json.loads(lock_path(spec).read_text())
+    for key in ("guardrail_margins", "cuped", "pre_period_days"):
+        del lock[key]
+    lock_path(spec).write_text(json.dumps(lock))
+    assert lock_check(load_plan(spec))["status"] == "pass"
+    spec.write_text(spec.read_text().replace("alpha = 0.05", "alpha = 0.1"))
+    assert lock_check(load_plan(spec))["changes"] == ["alpha changed from 0.05 to 0.1"]
+
+
 def test_a_definition_changed_after_the_lock_fails_the_run(tmp_path: Path) -> None:
     defs = tmp_path / "defs"
     shutil.copytree(ROOT / "metric_defs", defs)
@@ -127,11 +183,22 @@ def test_lock_command_refuses_to_replace_a_lock_without_force(tmp_path: Path) ->
 
 @pytest.mark.parametrize(
     ("content", "needle"),
-    [("{not json", "unreadable lock file"), ('{"experiment": "case"}', "locked_at")],
-    ids=["malformed", "incomplete"],
+    [
+        ("{not json", "unreadable lock file"),
+        ('{"experiment": "case"}', "locked_at"),
+        ('"cuped": false', "cuped"),
+        ('"guardrail_margins": {}', "guardrail_margins"),
+    ],
+    ids=["malformed", "incomplete", "cuped", "margins"],
 )
 def test_a_broken_lock_is_bad_input(tmp_path: Path, content: str, needle: str) -> None:
     spec = case(tmp_path)
+    if content.startswith('"'):  # one value of a well-formed lock made malformed
+        write_lock(load_plan(spec), BEFORE)
+        key = content.split(":")[0]
+        good = lock_path(spec).read_text()
+        assert content in good
+        content = good.replace(content, f'{key}: "yes"')
     lock_path(spec).write_text(content)
     with pytest.raises(SpecError, match=needle):
         lock_check(load_plan(spec))
@@ -145,6 +212,9 @@ def test_every_demo_pipeline_carries_its_lock_unchanged(pipeline: str) -> None:
     """The demo's locks were made when the demo was assembled, after its invented dates:
     each holds its real time, so `run` reports it as made after the start."""
     plan: Plan = load_plan(PIPELINES / f"{pipeline}.toml")
+    lock = json.loads(lock_path(plan.spec.path).read_text())
+    assert lock["guardrail_margins"] == dict(plan.spec.guardrail_margins)
+    assert (lock["cuped"], lock["pre_period_days"]) == (plan.spec.cuped, plan.spec.pre_period_days)
     result = lock_check(plan)
     assert result["changes"] == []
     assert result["status"] == "warn" and result["locked_at"] > "2026-09-15"

@@ -131,6 +131,19 @@ def test_sizes_recomputed_from_the_unit_table(
     assert ref.power(plan.mde * x.mean() / x.std(ddof=1), per_arm, alpha) == pytest.approx(0.8)
 
 
+def test_quantile_metrics_are_not_planned_and_caps_are_named(
+    report: planning.PlanReport,
+) -> None:
+    """The history of a quantile metric holds counts of values, not its quantile: no size
+    is made up from them; a winsorised metric says it was sized on uncapped values."""
+    by_name = {m.metric: m for m in report.metrics}
+    p95 = by_name["page_latency_p95"]
+    assert p95.note == planning.NOT_PLANNED
+    assert all(math.isnan(v) for v in (p95.baseline, p95.sd, p95.units, p95.mde))
+    assert "uncapped" in by_name["revenue_winsorised"].note
+    assert by_name["revenue"].note == ""
+
+
 def test_arrivals_and_days(rows: pl.DataFrame, report: planning.PlanReport) -> None:
     units = _analysed(rows)
     per_day = units.group_by("first_day").len().sort("first_day")["len"].to_list()

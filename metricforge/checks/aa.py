@@ -4,13 +4,20 @@ One pass over the events: the run's per-unit table is reduced to each reported m
 moments in 4096 hash buckets of the unit id (the result query ``buckets``). Each replay
 then assigns the buckets to the variants by the planned split with a salted hash (the
 salt names the experiment, the seed and the replay), merges the bucket moments per variant
-and computes every metric's p-value exactly as the scorecard does (Welch / delta method).
-Whole buckets move together, but bucket membership is a hash of the unit id, unrelated to
-anything measured, so a bucket split is a valid random split of the units.
+and computes every metric's p-value with the scorecard's own functions: ``compare_batch``
+with the metric's hypothesis (two-sided; a guardrail's one-sided harm or non-inferiority
+test with its margin), proportions by z or Fisher, winsorised metrics capped at the cap of
+the replayed period's pooled values (a cap does not depend on the split), and with CUPED
+the adjusted statistic (``cuped_batch``). Whole buckets move together, but bucket
+membership is a hash of the unit id, unrelated to anything measured, so a bucket split is
+a valid random split of the units.
 
 ``--period pre`` replays the units' pre-period (the spec's ``pre_period_days``, or as many
 days as the analysis window when it sets none), where no treatment acted; ``experiment``
-replays the experiment period itself (any real effect is spread over both arms).
+replays the experiment period itself (any real effect is spread over both arms). CUPED
+metrics are replayed adjusted in the experiment period; in the pre-period, which has no
+earlier period to adjust by, they are replayed unadjusted (the report says so). Quantile
+metrics are not replayable from bucket moments and are listed as such.
 """
 
 from __future__ import annotations
@@ -23,13 +30,22 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 
-from metricforge.compile.checks import BUCKET_DIGITS, bucket_moments
+from metricforge.compile.checks import (
+    BUCKET_DIGITS,
+    bucket_column,
+    bucket_moments,
+    replay_scope,
+    replay_variables,
+    replayable,
+)
 from metricforge.compile.query import CompiledRun, compile_plan
 from metricforge.engines.base import Engine
 from metricforge.errors import StatsError
+from metricforge.report.inference import hypothesis
 from metricforge.runner import gather_inputs
-from metricforge.spec.model import Plan
+from metricforge.spec.model import Kind, Plan
 from metricforge.stats.calibration import Calibration, calibration
+from metricforge.stats.cuped import PER_UNIT, RATIO
 from metricforge.stats.replay import (
     BucketMoments,
     BucketSplitter,
@@ -40,6 +56,9 @@ from metricforge.stats.replay import (
 
 N_BUCKETS = 16**BUCKET_DIGITS
 CHUNK = 256  # replays per block: bounds memory at CHUNK × buckets numbers per array
+# A non-inferiority test's H0 ("worse by the margin or more") is false in an A/A: its share
+# of p < alpha is its power to show non-inferiority, not a false-positive rate.
+NOT_JUDGED = "not judged: non-inferiority, its H0 is false in an A/A (the share is its power)"
 
 
 class Period(StrEnum):
@@ -58,6 +77,8 @@ class ReplayReport:
     buckets: int  # buckets holding at least one analysed unit
     alpha: float
     rows: list[dict[str, Any]] = field(default_factory=list)  # one per metric and variant
+    skipped: list[dict[str, str]] = field(default_factory=list)  # metric, role, reason
+    notes: list[str] = field(default_factory=list)  # how the replay's statistics were chosen
 
     def as_json(self) -> dict[str, Any]:
         """The report, floats to 10 significant digits: the unordered bucket sums may
@@ -85,18 +106,23 @@ def replay_plan(plan: Plan, period: Period) -> Plan:
 
 def compiled_replay(plan: Plan, period: Period, dialect: str) -> CompiledRun:
     """The run's one scan of the events, then only the bucket moments."""
-    prefix = "pre" if period is Period.PRE else ""
     # Unordered: ordering ~40 aggregates by unit inside 4,096 groups would cost more than
     # all the replays; a bucket's few floats may then add up in another order, so figures
     # can differ in their last bits between runs (see ReplayReport.as_json).
-    query = bucket_moments(plan, prefix, ordered=False)
+    query = bucket_moments(plan, _prefix(period), ordered=False)
     return CompiledRun(
         unit_rows=compile_plan(plan, dialect).unit_rows, results=(("buckets", query),)
     )
 
 
-def bucket_arrays(plan: Plan, table: pa.Table) -> tuple[dict[str, BucketMoments], int]:
-    """Every reported metric's moments as arrays over all buckets (empty ones zero)."""
+def _prefix(period: Period) -> str:
+    return "pre" if period is Period.PRE else ""
+
+
+def bucket_arrays(
+    plan: Plan, table: pa.Table, period: Period
+) -> tuple[dict[str, BucketMoments], int]:
+    """Every replayable metric's moments as arrays over all buckets (empty ones zero)."""
     index = np.asarray(table.column("bucket").to_pylist(), dtype=np.int64)
 
     def full(name: str) -> np.ndarray[Any, np.dtype[np.float64]]:
@@ -105,18 +131,56 @@ def bucket_arrays(plan: Plan, table: pa.Table) -> tuple[dict[str, BucketMoments]
         out[index] = np.asarray(values, dtype=np.float64)
         return out
 
+    scope = replay_scope(plan, _prefix(period))
     metrics = {}
-    for name, _role in plan.reported:
-        ratio = plan.metric(name).is_ratio
-        metrics[name] = BucketMoments(
-            n=full(f"{name}__n"),
-            mean_x=full(f"{name}__mean_x"),
-            m2_x=full(f"{name}__m2_x"),
-            mean_y=full(f"{name}__mean_y") if ratio else None,
-            m2_y=full(f"{name}__m2_y") if ratio else None,
-            c_xy=full(f"{name}__c_xy") if ratio else None,
+    for metric in replayable(plan):
+        names = tuple(a for a, _ in replay_variables(scope, metric))
+        k = len(names)
+        m2 = np.zeros((N_BUCKETS, k, k))
+        for i in range(k):
+            for j in range(i, k):
+                m2[:, i, j] = m2[:, j, i] = full(bucket_column(metric, "m2", names[i], names[j]))
+        metrics[metric.name] = BucketMoments(
+            names=names,
+            n=full(bucket_column(metric, "n", "")),
+            mean=np.column_stack([full(bucket_column(metric, "mean", a)) for a in names]),
+            m2=m2,
         )
     return metrics, int(sum(table.column("n_units").to_pylist()))
+
+
+def replay_p_values(
+    plan: Plan,
+    splitter: BucketSplitter,
+    first: int,
+    count: int,
+    *,
+    seed: int,
+    independent_events: frozenset[str] = frozenset(),
+) -> dict[str, dict[str, np.ndarray[Any, np.dtype[np.float64]]]]:
+    """Per metric and treatment variant, the p-values of replays first..first+count-1,
+    each as the scorecard computes it for that split (``stats.replay.p_values``)."""
+    spec = plan.spec
+    salt = f"metricforge-aa|{spec.name}|{seed}"
+    shares = [s for _, s in spec.variants]
+    arms = assign(bucket_hashes(salt, first, count, N_BUCKETS), shares)
+    arms_moments = splitter.split(arms, len(shares))
+    margins = dict(spec.guardrail_margins)
+    roles = dict(plan.reported)
+    out = {}
+    for name, per_variant in arms_moments.items():
+        metric = plan.metric(name)
+        side, _ = hypothesis(metric, roles[name], margins.get(name))
+        p = p_values(
+            per_variant,
+            proportion=metric.kind is Kind.PROPORTION,
+            alpha=spec.alpha,
+            side=side,
+            margin=margins.get(name),
+            independent_events=name in independent_events,
+        )
+        out[name] = dict(zip(spec.variant_names[1:], p, strict=True))
+    return out
 
 
 def replay(
@@ -131,36 +195,62 @@ def replay(
 
     ``independent_events`` names ratio metrics to analyse with a deliberately wrong
     variance, as if their denominator events were independent: a test-only switch that
-    shows the replay catches a broken variance.
+    shows the replay catches a broken variance (unadjusted ratios only).
     """
-    spec = plan.spec
     if replays < 2:
         raise StatsError("needs at least two replays")
-    salt = f"metricforge-aa|{spec.name}|{seed}"
-    shares = [s for _, s in spec.variants]
-    names = list(buckets)
     splitter = BucketSplitter(buckets)
+    treatments = plan.spec.variant_names[1:]
     p: dict[str, dict[str, list[np.ndarray[Any, Any]]]] = {
-        m: {v: [] for v in spec.variant_names[1:]} for m in names
+        m: {v: [] for v in treatments} for m in buckets
     }
     for first in range(0, replays, CHUNK):
         count = min(CHUNK, replays - first)
-        arms = assign(bucket_hashes(salt, first, count, N_BUCKETS), shares)
-        arms_moments = splitter.split(arms, len(shares))
-        for name in names:
-            per_variant = arms_moments[name]
-            for k, variant in enumerate(spec.variant_names[1:], start=1):
-                p[name][variant].append(
-                    p_values(
-                        per_variant[k],
-                        per_variant[0],
-                        independent_events=name in independent_events,
-                    )
-                )
+        found = replay_p_values(
+            plan, splitter, first, count, seed=seed, independent_events=independent_events
+        )
+        for name, by_variant in found.items():
+            for variant, values in by_variant.items():
+                p[name][variant].append(values)
     return {
-        name: {v: calibration(np.concatenate(chunks), spec.alpha) for v, chunks in by.items()}
+        name: {v: calibration(np.concatenate(chunks), plan.spec.alpha) for v, chunks in by.items()}
         for name, by in p.items()
     }
+
+
+def notes(plan: Plan, period: Period) -> list[str]:
+    """One sentence per choice the replay made to match the scorecard."""
+    spec, out = plan.spec, []
+    if spec.guardrails:
+        out.append(
+            "guardrails are tested one-sided as in the scorecard: a calibrated harm test"
+            " also has p < alpha in about alpha of the replays; a non-inferiority test (a"
+            " guardrail with a margin) is not judged, since the treatment equals the control"
+            " in an A/A and is therefore never worse by the margin"
+        )
+    if spec.cuped and period is Period.PRE:
+        out.append(
+            "CUPED: the pre-period has no earlier period to adjust by, so its metrics are"
+            " replayed unadjusted: this checks the unadjusted variance (--period experiment"
+            " replays the adjusted statistic)"
+        )
+    elif spec.cuped and plan.pre_period_days > 0:
+        out.append(
+            "CUPED: metrics are replayed adjusted by their pre-period values, as the"
+            " scorecard computes them"
+        )
+    if any(m.winsorise is not None for m in replayable(plan)):
+        out.append(
+            "winsorised metrics are capped at the quantile of the replayed period's pooled"
+            " per-unit values, as the scorecard caps them (the cap does not depend on the"
+            " split)"
+        )
+    return out
+
+
+def statistic(names: tuple[str, ...]) -> str:
+    """What a replay of a metric with these variables tests: adjusted or not."""
+    return "cuped-adjusted" if names in (PER_UNIT, RATIO) else "unadjusted"
 
 
 def run_aa(
@@ -178,20 +268,30 @@ def run_aa(
     table = engine.run(compiled_replay(scan_plan, period, engine.dialect), inputs)["buckets"]
     if table.num_rows == 0:
         raise StatsError(f"experiment '{plan.spec.name}' has no analysed units to replay")
-    buckets, units = bucket_arrays(plan, table)
+    buckets, units = bucket_arrays(plan, table, period)
     results = replay(
         plan, buckets, replays=replays, seed=seed, independent_events=independent_events
     )
-    rows = []
+    rows, skipped = [], []
+    margins = dict(plan.spec.guardrail_margins)
     for name, role in plan.reported:
+        if name not in results:
+            reason = "not replayable: a quantile is not a merge of per-unit moments"
+            skipped.append({"metric": name, "role": role.value, "reason": reason})
+            continue
+        margin = margins.get(name)
+        _, tested = hypothesis(plan.metric(name), role, margin)
         for variant, cal in results[name].items():
             rows.append(
                 {
                     "metric": name,
                     "role": role.value,
                     "variant": variant,
+                    "hypothesis": tested,
+                    "margin": margin,
+                    "statistic": statistic(buckets[name].names),
                     **dataclasses.asdict(cal),
-                    "verdict": cal.verdict.value,
+                    "verdict": cal.verdict.value if margin is None else NOT_JUDGED,
                 }
             )
     return ReplayReport(
@@ -204,4 +304,6 @@ def run_aa(
         buckets=table.num_rows,
         alpha=plan.spec.alpha,
         rows=rows,
+        skipped=skipped,
+        notes=notes(plan, period),
     )

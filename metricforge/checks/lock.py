@@ -1,10 +1,13 @@
 """The decision metric fixed up front: a lock file next to the spec, compared on every run.
 
 ``metricforge lock PIPELINE`` writes ``<spec name>.lock.json`` beside the spec: the decision
-metric, the guardrails, alpha, and a content hash of each metric's definition (with the
+metric, the guardrails, alpha, the guardrails' non-inferiority margins, whether CUPED is on
+and the pre-period's length, and a content hash of each metric's definition (with the
 definitions it is built from; descriptions and unit labels left out), stamped with the real
 time of locking — there is no way to set another time. ``run`` compares:
-  fail  something locked changed (decision metric, guardrails, alpha, a definition);
+  fail  something locked changed (decision metric, guardrails, alpha, a margin, CUPED or
+        pre_period_days, a definition; a lock written before margins, CUPED and the
+        pre-period were recorded is compared on what it holds);
   warn  there is no lock, or it was made at or after the experiment's start (it cannot show
         that the metric was chosen before the data existed);
   pass  a lock made before the start, unchanged.
@@ -22,7 +25,7 @@ from typing import Any
 from metricforge import __version__
 from metricforge.checks.result import FAIL, PASS, WARN, check
 from metricforge.errors import SpecError
-from metricforge.spec.model import Plan
+from metricforge.spec.model import ExperimentSpec, Plan
 
 SUFFIX = ".lock.json"
 COSMETIC = frozenset({"description", "unit_label"})  # keys that change no number
@@ -68,6 +71,9 @@ def lock_record(plan: Plan, now: dt.datetime) -> dict[str, Any]:
         "guardrails": [
             {"metric": g, "sha256": definition_sha256(plan, g)} for g in spec.guardrails
         ],
+        "guardrail_margins": dict(spec.guardrail_margins),
+        "cuped": spec.cuped,
+        "pre_period_days": spec.pre_period_days,
         "tool_version": __version__,
     }
 
@@ -116,7 +122,42 @@ def read_lock(path: Path) -> dict[str, Any] | None:
     )
     if not well_formed or not isinstance(data["alpha"], int | float):
         raise SpecError("malformed decision, guardrails or alpha", file=str(path))
+    margins = data.get("guardrail_margins", {})
+    kinds = {
+        "guardrail_margins": isinstance(margins, dict)
+        and all(isinstance(v, int | float) and not isinstance(v, bool) for v in margins.values()),
+        "cuped": isinstance(data.get("cuped", False), bool),
+        "pre_period_days": type(data.get("pre_period_days", 0)) is int,
+    }
+    for key, ok in kinds.items():
+        if not ok:
+            raise SpecError("malformed value", file=str(path), key=key)
     return dict(data)
+
+
+def _percent(margin: float | None) -> str:
+    return "none" if margin is None else f"{100 * margin:.4g}%"
+
+
+def _analysis_changes(spec: ExperimentSpec, lock: dict[str, Any]) -> list[str]:
+    """Changes of margins, CUPED and the pre-period; keys an older lock lacks are skipped."""
+    out: list[str] = []
+    if "guardrail_margins" in lock:
+        locked = {str(k): float(v) for k, v in lock["guardrail_margins"].items()}
+        now = dict(spec.guardrail_margins)
+        for name in sorted(set(locked) | set(now)):
+            if locked.get(name) != now.get(name):
+                out.append(
+                    f"margin of guardrail '{name}' changed from"
+                    f" {_percent(locked.get(name))} to {_percent(now.get(name))}"
+                )
+    if "cuped" in lock and lock["cuped"] != spec.cuped:
+        out.append(f"CUPED turned {'on' if spec.cuped else 'off'}")
+    if "pre_period_days" in lock and lock["pre_period_days"] != spec.pre_period_days:
+        out.append(
+            f"pre_period_days changed from {lock['pre_period_days']} to {spec.pre_period_days}"
+        )
+    return out
 
 
 def changes(plan: Plan, lock: dict[str, Any]) -> list[str]:
@@ -140,7 +181,7 @@ def changes(plan: Plan, lock: dict[str, Any]) -> list[str]:
     out += [f"guardrail '{name}' removed" for name in locked if name not in spec.guardrails]
     if float(lock["alpha"]) != spec.alpha:
         out.append(f"alpha changed from {lock['alpha']} to {spec.alpha}")
-    return out
+    return out + _analysis_changes(spec, lock)
 
 
 def lock_check(plan: Plan) -> dict[str, Any]:

@@ -6,61 +6,68 @@ bot_events      per variant, over every exposed unit: moments of the events the 
                 filter removed and of all events (the removed-event share, delta method)
 identities      with identity stitching: units and cookies per identity kind
 buckets         (A/A replay only, see ``bucket_moments``) per hash bucket of the unit id,
-                each reported metric's (n, mean, M2) of the analysed units
+                each replayable metric's count, means and M2 of its replay variables
+                over the analysed units
 """
 
 from __future__ import annotations
 
+import dataclasses
+
 import sqlglot.expressions as exp
 
-from metricforge.compile.stitch import ordered_agg
-from metricforge.spec.model import Plan
+from metricforge.compile.extras import (
+    CAPS,
+    cap_ctes,
+    capped,
+    cuped_metrics,
+    cuped_variables,
+    reported,
+)
+from metricforge.compile.sqlparts import (
+    BIGINT,
+    DOUBLE,
+    UNIT_TABLE,
+    aggregate,
+    analysed,
+    col,
+    lit,
+    moment_aggregates,
+    one_if,
+    with_ctes,
+)
+from metricforge.spec.model import Kind, MetricDef, Plan
 
-UNIT_TABLE = "unit_rows"
 BUCKET_DIGITS = 3  # hex digits of MD5(unit): 16**3 = 4096 buckets
 HEX = "0123456789abcdef"
-BIGINT = exp.DataType.build("BIGINT")
-DOUBLE = exp.DataType.build("DOUBLE")
-
-
-def _c(name: str) -> exp.Column:
-    return exp.column(name)
-
-
-def _n(value: int) -> exp.Expr:
-    return exp.Literal.number(value)
-
-
-def _one_if(cond: exp.Expr) -> exp.Expr:
-    return exp.Case().when(cond, _n(1)).else_(_n(0))
+REPLAY_UNITS = "replay_units"
 
 
 def exposure_days() -> exp.Select:
-    day = exp.cast(_c("first_ts"), exp.DataType.build("DATE"))
+    day = exp.cast(col("first_ts"), exp.DataType.build("DATE"))
     return (
         exp.select(
-            _c("variant"),
+            col("variant"),
             exp.alias_(day, "first_day"),
             exp.alias_(exp.Count(this=exp.Star()), "n_units"),
-            exp.alias_(exp.cast(exp.Sum(this=_one_if(_c("two_variants"))), BIGINT), "n_two"),
+            exp.alias_(exp.cast(exp.Sum(this=one_if(col("two_variants"))), BIGINT), "n_two"),
         )
         .from_(UNIT_TABLE)
-        .group_by(_c("variant"), day.copy())
-        .order_by(_c("variant"), day.copy())
+        .group_by(col("variant"), day.copy())
+        .order_by(col("variant"), day.copy())
     )
 
 
 def bot_events(ordered: bool) -> exp.Select:
-    removed = exp.cast(exp.Case().when(_c("is_bot"), _c("n_events")).else_(_n(0)), DOUBLE)
-    events = exp.cast(_c("n_events"), DOUBLE)
-    by = _c("unit") if ordered else None
+    removed = exp.cast(exp.Case().when(col("is_bot"), col("n_events")).else_(lit(0)), DOUBLE)
+    events = exp.cast(col("n_events"), DOUBLE)
 
     def agg(cls: type[exp.Func], x: exp.Expr, y: exp.Expr | None = None) -> exp.Expr:
-        return ordered_agg(cls, x.copy(), y.copy() if y is not None else None, by)
+        return aggregate(cls, x.copy(), y.copy() if y is not None else None, ordered=ordered)
 
     return (
         exp.select(
-            _c("variant"),
+            col("variant"),
             exp.alias_(exp.Count(this=exp.Star()), "n_units"),
             exp.alias_(agg(exp.Avg, removed), "mean_removed"),
             exp.alias_(agg(exp.Avg, events), "mean_events"),
@@ -69,30 +76,30 @@ def bot_events(ordered: bool) -> exp.Select:
             exp.alias_(agg(exp.CovarSamp, removed, events), "cov_removed_events"),
         )
         .from_(UNIT_TABLE)
-        .group_by(_c("variant"))
-        .order_by(_c("variant"))
+        .group_by(col("variant"))
+        .order_by(col("variant"))
     )
 
 
 def identities() -> exp.Select:
-    several = _c("n_cookies") > _n(1)
+    several = col("n_cookies") > lit(1)
     return (
         exp.select(
-            _c("identity"),
+            col("identity"),
             exp.alias_(exp.Count(this=exp.Star()), "n_units"),
-            exp.alias_(exp.cast(exp.Sum(this=_c("n_cookies")), BIGINT), "n_cookies"),
-            exp.alias_(exp.cast(exp.Sum(this=_one_if(several)), BIGINT), "n_merged_units"),
+            exp.alias_(exp.cast(exp.Sum(this=col("n_cookies")), BIGINT), "n_cookies"),
+            exp.alias_(exp.cast(exp.Sum(this=one_if(several)), BIGINT), "n_merged_units"),
             exp.alias_(
                 exp.cast(
-                    exp.Sum(this=exp.Case().when(several.copy(), _c("n_cookies")).else_(_n(0))),
+                    exp.Sum(this=exp.Case().when(several.copy(), col("n_cookies")).else_(lit(0))),
                     BIGINT,
                 ),
                 "n_merged_cookies",
             ),
         )
         .from_(UNIT_TABLE)
-        .group_by(_c("identity"))
-        .order_by(_c("identity"))
+        .group_by(col("identity"))
+        .order_by(col("identity"))
     )
 
 
@@ -110,58 +117,88 @@ def bucket_of_unit() -> exp.Expr:
     Built from MD5, SUBSTRING and STRPOS only, which render to the same values in DuckDB
     and Spark (no base-conversion function is common to both).
     """
-    digest = exp.MD5(this=_c("unit"))
+    digest = exp.MD5(this=col("unit"))
     total: exp.Expr | None = None
     for k in range(BUCKET_DIGITS):
-        char = exp.Substring(this=digest.copy(), start=_n(k + 1), length=_n(1))
+        char = exp.Substring(this=digest.copy(), start=lit(k + 1), length=lit(1))
         digit = exp.Sub(
-            this=exp.StrPosition(this=exp.Literal.string(HEX), substr=char), expression=_n(1)
+            this=exp.StrPosition(this=exp.Literal.string(HEX), substr=char), expression=lit(1)
         )
-        term = exp.Mul(this=exp.paren(digit), expression=_n(16 ** (BUCKET_DIGITS - 1 - k)))
+        term = exp.Mul(this=exp.paren(digit), expression=lit(16 ** (BUCKET_DIGITS - 1 - k)))
         total = term if total is None else exp.Add(this=total, expression=term)
     assert total is not None
     return total
 
 
-def bucket_moments(plan: Plan, period: str, ordered: bool) -> exp.Select:
-    """Per hash bucket, over the analysed units: each reported metric's unit count, means
-    and sums of squared (cross) deviations from the bucket mean (M2 = n · population var).
+def replay_scope(plan: Plan, period: str) -> Plan:
+    """The plan whose rules a replay of ``period`` follows: an earlier period ("pre") has
+    no period before it to adjust by, so CUPED is off there (winsorising stays on, with
+    caps computed from that period's values)."""
+    if not period or not plan.spec.cuped:
+        return plan
+    return dataclasses.replace(plan, spec=dataclasses.replace(plan.spec, cuped=False))
 
-    ``period`` is "" (experiment) or "pre" (the pre-period columns ``xpre_``/``ypre_``).
+
+def replayable(plan: Plan) -> list[MetricDef]:
+    """The reported metrics a replay can re-randomise: every one but quantile metrics,
+    whose statistic is not a merge of per-unit moments."""
+    return [m for m in reported(plan) if m.kind is not Kind.QUANTILE]
+
+
+def replay_variables(plan: Plan, metric: MetricDef) -> list[tuple[str, exp.Expr]]:
+    """The per-unit variables whose bucket moments replay ``metric`` as the scorecard
+    computes it: with CUPED the outcome and covariates (``extras.cuped_variables``), else
+    x (capped when winsorised) and, for a ratio, y. ``plan`` is a ``replay_scope``."""
+    if metric.name in {m.name for m in cuped_metrics(plan)}:
+        return cuped_variables(metric)
+    found = [("x", capped(col(f"x_{metric.name}"), metric))]
+    if metric.is_ratio:
+        found.append(("y", col(f"y_{metric.name}")))
+    return found
+
+
+def bucket_column(metric: MetricDef, stat: str, a: str = "", b: str = "") -> str:
+    """``<metric>__n``, ``<metric>__mean_<a>``, ``<metric>__m2_<a>_<b>``."""
+    return "__".join([metric.name, "_".join(p for p in (stat, a, b) if p)])
+
+
+def bucket_moments(plan: Plan, period: str, ordered: bool) -> exp.Select:
+    """Per hash bucket, over the analysed units: for each replayable metric the count, the
+    means of its replay variables and their sums of squared and cross deviations from the
+    bucket means (M2 = n · population (co)variance).
+
+    ``period`` is "" (experiment) or "pre": then the pre-period columns (``xpre_``,
+    ``ypre_``) are read under the experiment's names from the CTE ``replay_units``, so that
+    caps and variables are built the same way for both periods.
     """
+    scope = replay_scope(plan, period)
+    source, ctes = UNIT_TABLE, []
+    if period:
+        renamed = exp.select(col("unit"), col("is_bot"), col("contaminated"))
+        for metric in replayable(plan):
+            names = ["x", "y"] if metric.is_ratio else ["x"]
+            renamed = renamed.select(
+                *[
+                    exp.alias_(col(f"{v}{period}_{metric.name}"), f"{v}_{metric.name}")
+                    for v in names
+                ]
+            )
+        source, ctes = REPLAY_UNITS, [(REPLAY_UNITS, renamed.from_(UNIT_TABLE))]
     bucket = bucket_of_unit()
-    by = _c("unit") if ordered else None
     select = exp.select(
         exp.alias_(bucket, "bucket"), exp.alias_(exp.Count(this=exp.Star()), "n_units")
     )
-    for name, _role in plan.reported:
-        metric = plan.metric(name)
-        x = _c(f"x{period}_{name}")
-        n = exp.Count(this=x.copy())
-        select = select.select(
-            exp.alias_(n, f"{name}__n"),
-            exp.alias_(ordered_agg(exp.Avg, x.copy(), None, by), f"{name}__mean_x"),
-            exp.alias_(
-                exp.Mul(this=ordered_agg(exp.VariancePop, x.copy(), None, by), expression=n.copy()),
-                f"{name}__m2_x",
-            ),
-        )
-        if metric.is_ratio:
-            y = _c(f"y{period}_{name}")
-            select = select.select(
-                exp.alias_(ordered_agg(exp.Avg, y.copy(), None, by), f"{name}__mean_y"),
-                exp.alias_(
-                    exp.Mul(
-                        this=ordered_agg(exp.VariancePop, y.copy(), None, by), expression=n.copy()
-                    ),
-                    f"{name}__m2_y",
-                ),
-                exp.alias_(
-                    exp.Mul(
-                        this=ordered_agg(exp.CovarPop, x.copy(), y.copy(), by), expression=n.copy()
-                    ),
-                    f"{name}__c_xy",
-                ),
-            )
-    analysed = exp.and_(_c("is_bot").not_(), _c("contaminated").not_())
-    return select.from_(UNIT_TABLE).where(analysed).group_by(bucket.copy()).order_by(bucket.copy())
+    for metric in replayable(plan):
+        variables = replay_variables(scope, metric)
+        parts = moment_aggregates(variables, ordered=ordered, population=True)
+        n = parts[0][3]
+        for stat, a, b, agg in parts:
+            if stat == "cov":  # M2 = n · population (co)variance
+                stat, agg = "m2", exp.Mul(this=agg, expression=n.copy())
+            select = select.select(exp.alias_(agg, bucket_column(metric, stat, a, b)))
+    query = select.from_(source)
+    caps = cap_ctes(scope, source)
+    if caps:
+        query = query.join(exp.to_table(CAPS), join_type="cross")
+    query = query.where(analysed()).group_by(bucket.copy()).order_by(bucket.copy())
+    return with_ctes(query, ctes + caps)

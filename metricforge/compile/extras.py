@@ -17,7 +17,14 @@ from __future__ import annotations
 
 import sqlglot.expressions as exp
 
-from metricforge.compile.ranks import DOUBLE, ranked, value_at
+from metricforge.compile.ranks import ranked, value_at
+from metricforge.compile.sqlparts import (
+    DOUBLE,
+    aggregate,
+    analysed,
+    moment_aggregates,
+    with_ctes,
+)
 from metricforge.spec.model import Kind, MetricDef, Plan
 from metricforge.stats.quantiles import two_sided_z
 
@@ -32,25 +39,6 @@ def _lit(value: str | float) -> exp.Expr:
 
 def _double(e: exp.Expr) -> exp.Expr:
     return exp.cast(e, DOUBLE)
-
-
-def analysed() -> exp.Expr:
-    return exp.and_(exp.column("is_bot").not_(), exp.column("contaminated").not_())
-
-
-def aggregate(
-    cls: type[exp.Func], this: exp.Expr, other: exp.Expr | None = None, *, ordered: bool
-) -> exp.Expr:
-    """An aggregate; in DuckDB its input ordered by unit, so float sums are bit-stable."""
-
-    def order(e: exp.Expr) -> exp.Expr:
-        if not ordered:
-            return e
-        return exp.Order(this=e, expressions=[exp.Ordered(this=exp.column("unit"))])
-
-    if other is None:
-        return cls(this=order(this))
-    return cls(this=this, expression=order(other))
 
 
 # -- which metrics ---------------------------------------------------------------------------
@@ -155,12 +143,6 @@ def cap_ctes(plan: Plan, table: str) -> list[tuple[str, exp.Select]]:
     ]
 
 
-def with_ctes(query: exp.Select, ctes: list[tuple[str, exp.Select]]) -> exp.Select:
-    for name, cte in ctes:
-        query = query.with_(name, as_=cte)
-    return query
-
-
 def caps_query(plan: Plan, table: str) -> exp.Select:
     return with_ctes(exp.select(exp.Star()).from_(CAPS), cap_ctes(plan, table))
 
@@ -200,24 +182,8 @@ def cuped_column(metric: MetricDef, stat: str, a: str = "", b: str = "") -> str:
 def cuped_query(plan: Plan, table: str, *, ordered: bool) -> exp.Select:
     select = exp.select(exp.column("variant"))
     for metric in cuped_metrics(plan):
-        variables = cuped_variables(metric)
-        select = select.select(
-            exp.alias_(exp.Count(this=variables[0][1].copy()), cuped_column(metric, "n"))
-        )
-        for a, va in variables:
-            select = select.select(
-                exp.alias_(
-                    aggregate(exp.Avg, va.copy(), ordered=ordered), cuped_column(metric, "mean", a)
-                )
-            )
-        for i, (a, va) in enumerate(variables):
-            for b, vb in variables[i:]:
-                agg = (
-                    aggregate(exp.Variance, va.copy(), ordered=ordered)
-                    if a == b
-                    else aggregate(exp.CovarSamp, va.copy(), vb.copy(), ordered=ordered)
-                )
-                select = select.select(exp.alias_(agg, cuped_column(metric, "cov", a, b)))
+        for stat, a, b, agg in moment_aggregates(cuped_variables(metric), ordered=ordered):
+            select = select.select(exp.alias_(agg, cuped_column(metric, stat, a, b)))
     source: exp.Select = select.from_(table)
     ctes = cap_ctes(plan, table)
     if ctes:

@@ -18,12 +18,8 @@ import itertools
 
 import sqlglot.expressions as exp
 
-from metricforge.compile.query import UNIT_TABLE, aggregate
+from metricforge.compile.sqlparts import UNIT_TABLE, aggregate, analysed
 from metricforge.spec.model import Plan
-
-
-def _analysed() -> exp.Expr:
-    return exp.and_(exp.column("is_bot").not_(), exp.column("contaminated").not_())
 
 
 def half_columns(ratio: bool) -> list[tuple[str, str, str | None]]:
@@ -72,14 +68,14 @@ def _history(plan: Plan, ordered: bool) -> exp.Select:
                 agg = aggregate(cls, kept(a), ordered=ordered)
             parts.append((suffix, agg))
         select = select.select(*[exp.alias_(e, f"{name}__{s}") for s, e in parts])
-    return select.from_(UNIT_TABLE).where(_analysed())
+    return select.from_(UNIT_TABLE).where(analysed())
 
 
 def _arrivals() -> exp.Select:
     return (
         exp.select(exp.column("first_day"), exp.alias_(exp.Count(this=exp.Star()), "n_units"))
         .from_(UNIT_TABLE)
-        .where(_analysed())
+        .where(analysed())
         .group_by(exp.column("first_day"))
         .order_by(exp.column("first_day"))
     )

@@ -33,7 +33,7 @@ import sqlglot.expressions as exp
 
 from metricforge.compile.checks import check_results
 from metricforge.compile.expressions import qualify
-from metricforge.compile.extras import cap_ctes, capped, extra_results, with_ctes
+from metricforge.compile.extras import cap_ctes, capped, extra_results
 from metricforge.compile.quality import (
     DUPLICATE_EXPOSURES,
     data_quality_query,
@@ -41,13 +41,22 @@ from metricforge.compile.quality import (
     usable,
     value_checks,
 )
+from metricforge.compile.sqlparts import (
+    BIGINT,
+    DOUBLE,
+    UNIT_TABLE,
+    aggregate,
+    sorted_concat,
+    with_ctes,
+)
+from metricforge.compile.sqlparts import all_of as _and
+from metricforge.compile.sqlparts import case as _case
+from metricforge.compile.sqlparts import col as _col
+from metricforge.compile.sqlparts import lit as _lit
 from metricforge.compile.stitch import stitch_stages
 from metricforge.spec.model import BotRule, Kind, MetricDef, Plan, RuleKind, TwoVariantPolicy
 
-UNIT_TABLE = "unit_rows"
 EXACT = exp.DataType.build("DECIMAL(38, 10)")
-DOUBLE = exp.DataType.build("DOUBLE")
-BIGINT = exp.DataType.build("BIGINT")
 
 
 @dataclass(frozen=True)
@@ -81,28 +90,8 @@ def result_columns(metric: MetricDef) -> MetricColumns:
     return MetricColumns(f"{base}__n", f"{base}__mean_x", f"{base}__var_x")
 
 
-def _col(name: str, table: str | None = None) -> exp.Column:
-    return exp.column(name, table=table)
-
-
-def _lit(value: str | int | float) -> exp.Expr:
-    if isinstance(value, str):
-        return exp.Literal.string(value)
-    return exp.Literal.number(value)
-
-
 def _ts(value: dt.datetime) -> exp.Expr:
     return exp.cast(exp.Literal.string(value.isoformat(sep=" ")), "TIMESTAMP")
-
-
-def _case(cond: exp.Expr, then: exp.Expr, default: exp.Expr | None = None) -> exp.Case:
-    case = exp.Case().when(cond, then)
-    return case.else_(default) if default is not None else case
-
-
-def _and(*parts: exp.Expr | None) -> exp.Expr:
-    kept = [p for p in parts if p is not None]
-    return exp.and_(*kept) if kept else exp.true()
 
 
 def _event_condition(metric: MetricDef, events: str) -> exp.Expr:
@@ -113,20 +102,6 @@ def _event_condition(metric: MetricDef, events: str) -> exp.Expr:
         kinds = _col("event", events).isin(*[_lit(e) for e in metric.events])
     where = exp.paren(qualify(metric.where, events)) if metric.where is not None else None
     return _and(kinds, where)
-
-
-def aggregate(
-    cls: type[exp.Func], this: exp.Expr, other: exp.Expr | None = None, *, ordered: bool
-) -> exp.Expr:
-    """An aggregate of one or two per-unit values; ordered by unit where the engine's float
-    summation depends on the order (DuckDB), so that parallel runs are bit-identical."""
-    if ordered:  # DuckDB takes the ORDER BY after the last argument
-        by = [exp.Ordered(this=_col("unit"))]
-        if other is None:
-            this = exp.Order(this=this, expressions=by)
-        else:
-            other = exp.Order(this=other, expressions=by)
-    return cls(this=this) if other is None else cls(this=this, expression=other)
 
 
 class _Builder:
@@ -436,10 +411,8 @@ class _Builder:
         if metric.kind is Kind.QUANTILE:
             parts = [exp.alias_(exp.cast(total, BIGINT), u)]
             if not period:  # one sorted list per unit; sessions without values hold NULL
-                lists = _col(f"l_{metric.name}")
-                kept = exp.Where(this=lists.is_(exp.null()).not_())
-                flat = exp.Flatten(this=exp.Filter(this=exp.ArrayAgg(this=lists), expression=kept))
-                parts.append(exp.alias_(exp.ArraySort(this=flat), f"l_{metric.name}"))
+                lists = sorted_concat(_col(f"l_{metric.name}"))
+                parts.append(exp.alias_(lists, f"l_{metric.name}"))
             return parts
         if metric.kind is Kind.DWELL_SUCCESS:
             session: exp.Expr = _col("session")

@@ -14,7 +14,7 @@ from __future__ import annotations
 
 import sqlglot.expressions as exp
 
-DOUBLE = exp.DataType.build("DOUBLE")
+from metricforge.compile.sqlparts import DOUBLE
 
 
 def ranked(source: str, key: str, value: str, *carried: str) -> exp.Select:

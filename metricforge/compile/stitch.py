@@ -7,6 +7,7 @@ Two stages follow ``units`` (one row per exposed cookie) when the spec sets ``st
               of the unit deny list
   stitched    one row per key: per-unit columns re-aggregated over the key's cookies
               (counts and sums add, a mean is its summed values over its summed count, a
+              quantile metric's sorted value lists are concatenated and sorted again, a
               proportion and every bot flag take the maximum, the first exposure the
               minimum); the variant is the one the key saw first, and a key whose cookies
               saw different variants counts as seen in two variants
@@ -19,42 +20,15 @@ from __future__ import annotations
 import sqlglot.expressions as exp
 
 from metricforge.compile.quality import DUPLICATE_EXPOSURES, unit_columns
+from metricforge.compile.sqlparts import BIGINT, DOUBLE, aggregate, case, col, sorted_concat
 from metricforge.spec.model import Kind, Plan, RuleKind
 
-DOUBLE = exp.DataType.build("DOUBLE")
-BIGINT = exp.DataType.build("BIGINT")
 STITCHED, NO_ID, SEVERAL_IDS = "stitched", "no_id", "several_ids"
-
-
-def ordered_agg(
-    cls: type[exp.Func], this: exp.Expr, other: exp.Expr | None, by: exp.Expr | None
-) -> exp.Expr:
-    """An aggregate of ``this`` (and ``other``), its input ordered by ``by`` when given.
-
-    DuckDB's float aggregates depend on the order rows arrive in; ordering them by unit
-    makes parallel runs bit-identical.
-    """
-
-    def order(arg: exp.Expr) -> exp.Expr:
-        return exp.Order(this=arg, expressions=[exp.Ordered(this=by.copy())]) if by else arg
-
-    if other is not None:
-        return cls(this=this, expression=order(other))
-    return cls(this=order(this))
-
-
-def _c(name: str, table: str | None = None) -> exp.Column:
-    return exp.column(name, table=table)
-
-
-def _when(cond: exp.Expr, then: exp.Expr, default: exp.Expr | None = None) -> exp.Case:
-    case = exp.Case().when(cond, then)
-    return case.else_(default) if default is not None else case
 
 
 def _identified(plan: Plan) -> exp.Select:
     u, f = "u", "f"
-    lo, hi = _c("id_min", u), _c("id_max", u)
+    lo, hi = col("id_min", u), col("id_max", u)
     one = lo.eq(hi)
     identity = (
         exp.Case()
@@ -65,47 +39,54 @@ def _identified(plan: Plan) -> exp.Select:
     select = exp.select(
         exp.Column(this=exp.Star(), table=exp.to_identifier(u)),
         exp.alias_(identity, "identity"),
-        exp.alias_(_when(one.copy(), lo.copy(), _c("unit", u)), "stitch_key"),
+        exp.alias_(case(one.copy(), lo.copy(), col("unit", u)), "stitch_key"),
     )
     select = select.select(
         *[
-            exp.alias_(_c(f"first_ts_{i}", f), f"first_ts_{i}")
+            exp.alias_(col(f"first_ts_{i}", f), f"first_ts_{i}")
             for i in range(len(plan.spec.variants))
         ]
     )
     for i, rule in enumerate(plan.bot_filter.rules):
         if rule.kind is RuleKind.DENY_UNIT:
-            listed = _c("unit", u).isin(*[exp.Literal.string(t) for t in rule.tokens])
-            flag = _when(listed, exp.Literal.number(1), exp.Literal.number(0))
+            listed = col("unit", u).isin(*[exp.Literal.string(t) for t in rule.tokens])
+            flag = case(listed, exp.Literal.number(1), exp.Literal.number(0))
             select = select.select(exp.alias_(flag, f"bot_rule_{i}"))
     return select.from_(exp.alias_(exp.to_table("units"), u, table=True)).join(
         exp.alias_(exp.to_table("first_exposure"), f, table=True),
-        on=_c("unit", u).eq(_c("unit", f)),
+        on=col("unit", u).eq(col("unit", f)),
     )
 
 
-def _merged_metric(plan: Plan, name: str, period: str, by: exp.Expr | None) -> list[exp.Expr]:
+def _merged_metric(plan: Plan, name: str, period: str, ordered: bool) -> list[exp.Expr]:
     """A metric's per-unit columns of one period, re-aggregated over a key's cookies."""
     metric = plan.metric(name)
     i = "i"
     u = f"u{period}_{name}"
+    cookie = col("unit", i)  # a stable order of the cookies inside each key
 
-    def count(col: str) -> exp.Expr:  # whole numbers: exact in any order
-        return exp.cast(exp.Sum(this=_c(col, i)), BIGINT)
+    def count(column: str) -> exp.Expr:  # whole numbers: exact in any order
+        return exp.cast(exp.Sum(this=col(column, i)), BIGINT)
 
-    def total(col: str) -> exp.Expr:  # floats: in a stable order
-        return ordered_agg(exp.Sum, _c(col, i), None, by)
+    def total(column: str) -> exp.Expr:  # floats: in a stable order
+        return aggregate(exp.Sum, col(column, i), ordered=ordered, unit=cookie)
 
     if metric.kind is Kind.COUNT:
         return [exp.alias_(count(u), u)]
     if metric.kind is Kind.SUM:
         return [exp.alias_(total(u), u)]
     if metric.kind is Kind.PROPORTION:
-        return [exp.alias_(exp.Max(this=_c(u, i)), u)]
+        return [exp.alias_(exp.Max(this=col(u, i)), u)]
     if metric.kind is Kind.MEAN:
         n = count(f"c{period}_{name}")
         mean = exp.Div(this=total(f"sv{period}_{name}"), expression=exp.cast(n.copy(), DOUBLE))
-        return [exp.alias_(_when(n > exp.Literal.number(0), mean), u)]
+        return [exp.alias_(case(n > exp.Literal.number(0), mean), u)]
+    if metric.kind is Kind.QUANTILE:  # the counts add; the sorted value lists merge
+        parts = [exp.alias_(count(u), u)]
+        if not period:
+            values = f"l_{name}"
+            parts.append(exp.alias_(sorted_concat(col(values, i)), values))
+        return parts
     if metric.kind is Kind.DWELL_SUCCESS:
         d = f"d{period}_{name}"
         return [exp.alias_(count(u), u), exp.alias_(count(d), d)]
@@ -114,44 +95,43 @@ def _merged_metric(plan: Plan, name: str, period: str, by: exp.Expr | None) -> l
 
 def _stitched(plan: Plan, ordered: bool, periods: list[str]) -> exp.Select:
     i = "i"
-    by = _c("unit", i) if ordered else None  # the cookie: a stable order inside each key
     names = plan.spec.variant_names
-    first = exp.Min(this=_c("first_ts", i))
+    first = exp.Min(this=col("first_ts", i))
     chosen = exp.Case()
     for k, name in enumerate(names):
         chosen = chosen.when(
-            exp.Min(this=_c(f"first_ts_{k}", i)).eq(first.copy()), exp.Literal.string(name)
+            exp.Min(this=col(f"first_ts_{k}", i)).eq(first.copy()), exp.Literal.string(name)
         )
     variants = exp.Greatest(
-        this=exp.Max(this=_c("n_variants", i)),
-        expressions=[exp.Count(this=exp.Distinct(expressions=[_c("variant", i)]))],
+        this=exp.Max(this=col("n_variants", i)),
+        expressions=[exp.Count(this=exp.Distinct(expressions=[col("variant", i)]))],
     )
     select = exp.select(
-        exp.alias_(_c("stitch_key", i), "unit"),
-        _c("identity", i),
-        exp.alias_(chosen.else_(exp.Min(this=_c("variant", i))), "variant"),
+        exp.alias_(col("stitch_key", i), "unit"),
+        col("identity", i),
+        exp.alias_(chosen.else_(exp.Min(this=col("variant", i))), "variant"),
         exp.alias_(variants, "n_variants"),
         exp.alias_(first, "first_ts"),
-        exp.alias_(exp.cast(exp.Sum(this=_c("n_events", i)), BIGINT), "n_events"),
-        exp.alias_(exp.Max(this=_c("max_session_events", i)), "max_session_events"),
-        exp.alias_(exp.cast(exp.Sum(this=_c("n_sessions", i)), BIGINT), "n_sessions"),
+        exp.alias_(exp.cast(exp.Sum(this=col("n_events", i)), BIGINT), "n_events"),
+        exp.alias_(exp.Max(this=col("max_session_events", i)), "max_session_events"),
+        exp.alias_(exp.cast(exp.Sum(this=col("n_sessions", i)), BIGINT), "n_sessions"),
         exp.alias_(exp.Count(this=exp.Star()), "n_cookies"),
     )
     for period in periods:
         events = f"n_{period}_events"
-        select = select.select(exp.alias_(exp.cast(exp.Sum(this=_c(events, i)), BIGINT), events))
+        select = select.select(exp.alias_(exp.cast(exp.Sum(this=col(events, i)), BIGINT), events))
     for column in (DUPLICATE_EXPOSURES, *unit_columns(plan)):  # data-quality counts add
-        select = select.select(exp.alias_(exp.cast(exp.Sum(this=_c(column, i)), BIGINT), column))
+        select = select.select(exp.alias_(exp.cast(exp.Sum(this=col(column, i)), BIGINT), column))
     for k, rule in enumerate(plan.bot_filter.rules):
         if rule.kind is not RuleKind.SESSION_EVENTS:
             select = select.select(
-                exp.alias_(exp.Max(this=_c(f"bot_rule_{k}", i)), f"bot_rule_{k}")
+                exp.alias_(exp.Max(this=col(f"bot_rule_{k}", i)), f"bot_rule_{k}")
             )
     for metric in plan.metrics:
         for period in ("", *periods):
-            select = select.select(*_merged_metric(plan, metric.name, period, by))
+            select = select.select(*_merged_metric(plan, metric.name, period, ordered))
     return select.from_(exp.alias_(exp.to_table("identified"), i, table=True)).group_by(
-        _c("identity", i), _c("stitch_key", i)
+        col("identity", i), col("stitch_key", i)
     )
 
 

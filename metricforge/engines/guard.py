@@ -21,7 +21,8 @@ import sqlglot
 import sqlglot.expressions as exp
 from sqlglot.errors import ParseError
 
-from metricforge.compile.query import UNIT_TABLE, CompiledRun
+from metricforge.compile.query import CompiledRun
+from metricforge.compile.sqlparts import UNIT_TABLE
 from metricforge.errors import EngineError
 
 SOURCE_VIEWS = frozenset({"events", "exposures"})

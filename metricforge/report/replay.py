@@ -20,16 +20,21 @@ def render_replay(report: ReplayReport, console: Console) -> None:
         f" alpha {report.alpha:g}, seed {report.seed}",
         markup=False,
     )
+    for note in report.notes:
+        console.print(f"- {note}", markup=False)
     table = Table()
-    for col in ("metric", "role", "variant", "p < alpha", "99% interval", "KS D", "KS p"):
-        table.add_column(col, justify="left" if col in ("metric", "role") else "right")
+    columns = ("metric", "role", "test", "variant", "p < alpha", "99% interval", "KS D", "KS p")
+    for col in columns:
+        table.add_column(col, justify="left" if col in ("metric", "role", "test") else "right")
     table.add_column("verdict")
     for r in report.rows:
-        verdict = r["verdict"] + ("" if r["uniform"] else "; p-values not uniform")
-        style = None if r["verdict"] == "calibrated" else "bold red"
+        judged = r["margin"] is None
+        verdict = r["verdict"] + ("" if r["uniform"] or not judged else "; p-values not uniform")
+        style = None if r["verdict"] == "calibrated" or not judged else "bold red"
         table.add_row(
             r["metric"],
             r["role"],
+            r["hypothesis"].split(":")[0] + ("" if r["statistic"] == "unadjusted" else ", cuped"),
             r["variant"],
             f"{r['share']:.3f}",
             f"{r['ci_low']:.3f}–{r['ci_high']:.3f}",
@@ -39,3 +44,5 @@ def render_replay(report: ReplayReport, console: Console) -> None:
             style=style,
         )
     console.print(table)
+    for s in report.skipped:
+        console.print(f"{s['metric']} ({s['role']}): {s['reason']}", markup=False)

@@ -22,15 +22,16 @@ the treatment coefficient of the least-squares fit outcome ~ 1 + variant dummies
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+import numpy.typing as npt
 
 from metricforge.errors import StatsError
 from metricforge.stats.effects import Effect, compare
-from metricforge.stats.moments import Moments
+from metricforge.stats.moments import FloatArray, Moments, MomentsBatch
 
 PER_UNIT = ("x", "c", "h")
 RATIO = ("x", "y", "xpre", "ypre", "h")
@@ -57,6 +58,32 @@ class UnitVectors:
         return mean, cov
 
 
+@dataclass(frozen=True)
+class VectorsBatch:
+    """``UnitVectors`` of one variant in many replays (or one run) at once: ``n`` (R,),
+    ``mean`` (R, k), ``cov`` (R, k, k); the variables are named by the caller."""
+
+    n: FloatArray
+    mean: FloatArray
+    cov: FloatArray
+
+    @classmethod
+    def of(cls, vectors: UnitVectors) -> VectorsBatch:
+        mean, cov = vectors.arrays()
+        return cls(np.array([float(vectors.n)]), mean[None, :], cov[None, :, :])
+
+
+@dataclass(frozen=True)
+class CupedBatch:
+    """Per variant (in the order given to ``cuped_batch``), arrays over replays."""
+
+    adjusted: list[MomentsBatch]  # n, the adjusted value, the variance of the residual
+    observed: list[FloatArray]  # the unadjusted value (mean, or ratio)
+    plain: list[FloatArray]  # the variance of the unadjusted estimate (already over n)
+    has_pre: list[npt.NDArray[np.bool_]]  # some unit of the variant has pre-period data
+    theta: FloatArray  # (R, 2): slopes on the covariate and the indicator
+
+
 @dataclass(frozen=True, slots=True)
 class CupedEffect:
     effect: Effect  # adjusted effect; value and control_value are the observed values
@@ -64,66 +91,106 @@ class CupedEffect:
     theta: tuple[float, ...]  # slopes on (covariate, indicator)
 
 
-def _index(names: tuple[str, ...], name: str) -> np.ndarray:
+def _index(names: tuple[str, ...], name: str) -> FloatArray:
     e = np.zeros(len(names))
     e[names.index(name)] = 1.0
     return e
 
 
-def _outcome(names: tuple[str, ...], mean: np.ndarray, ratio: bool) -> tuple[float, np.ndarray]:
-    """A variant's metric value and the weights of its (linearised) per-unit outcome."""
+def _outcome(
+    names: tuple[str, ...], mean: FloatArray, ratio: bool
+) -> tuple[FloatArray, FloatArray]:
+    """Per replay: a variant's metric value (R,) and the weights (R, k) of its
+    (linearised) per-unit outcome."""
     x = _index(names, "x")
     if not ratio:
-        return float(mean[names.index("x")]), x
-    mean_x, mean_y = mean[names.index("x")], mean[names.index("y")]
-    if mean_y == 0:
-        raise StatsError("the denominator's mean is zero for this variant")
-    r = mean_x / mean_y
-    return float(r), (x - r * _index(names, "y")) / mean_y
+        return mean[:, names.index("x")], np.broadcast_to(x, mean.shape)
+    mean_x, mean_y = mean[:, names.index("x")], mean[:, names.index("y")]
+    with np.errstate(all="ignore"):
+        r = mean_x / mean_y
+        w = (x[None, :] - r[:, None] * _index(names, "y")[None, :]) / mean_y[:, None]
+    return r, w
 
 
-def _covariates(
-    names: tuple[str, ...], arms: list[tuple[int, np.ndarray, np.ndarray]], ratio: bool
-) -> np.ndarray:
-    """Weights (variables × 2) of the covariate and the indicator."""
+def _pooled(arms: Sequence[VectorsBatch], values: FloatArray) -> FloatArray:
+    """The mean over all units of every variant: ``values`` (variants, R, ...) weighted
+    by the variants' unit counts."""
+    n = np.stack([a.n for a in arms]).reshape(len(arms), -1, *([1] * (values.ndim - 2)))
+    with np.errstate(all="ignore"):
+        return np.asarray(np.sum(n * values, axis=0) / np.sum(n, axis=0), np.float64)
+
+
+def _covariates(names: tuple[str, ...], arms: Sequence[VectorsBatch], ratio: bool) -> FloatArray:
+    """Weights (R, variables, 2) of the covariate and the indicator."""
     h = _index(names, "h")
+    shape = (*arms[0].mean.shape, 2)
     if not ratio:
-        return np.column_stack([_index(names, "c"), h])
-    total = sum(n for n, _, _ in arms)
-    xpre = sum(n * mean[names.index("xpre")] for n, mean, _ in arms) / total
-    ypre = sum(n * mean[names.index("ypre")] for n, mean, _ in arms) / total
-    if ypre == 0:  # no pre-period denominator anywhere: the numerator alone
-        return np.column_stack([_index(names, "xpre"), h])
-    linear = (_index(names, "xpre") - (xpre / ypre) * _index(names, "ypre")) / ypre
-    return np.column_stack([linear, h])
+        return np.broadcast_to(np.column_stack([_index(names, "c"), h]), shape)
+    xpre = _pooled(arms, np.stack([a.mean[:, names.index("xpre")] for a in arms]))
+    ypre = _pooled(arms, np.stack([a.mean[:, names.index("ypre")] for a in arms]))
+    e_xpre, e_ypre = _index(names, "xpre"), _index(names, "ypre")
+    with np.errstate(all="ignore"):
+        linear = (e_xpre[None, :] - (xpre / ypre)[:, None] * e_ypre[None, :]) / ypre[:, None]
+    # no pre-period denominator anywhere: the numerator alone
+    first = np.where((ypre == 0)[:, None], e_xpre[None, :], linear)
+    return np.stack([first, np.broadcast_to(h, first.shape)], axis=-1)
 
 
 def pooled_theta(
-    names: tuple[str, ...],
-    arms: list[tuple[int, np.ndarray, np.ndarray]],
-    weights: np.ndarray,
-    ratio: bool,
-) -> np.ndarray:
-    """The within-variant slope of the outcome on the covariates (``weights``), pooled over
-    the variants ``arms`` (n, means, covariance matrix).
+    names: tuple[str, ...], arms: Sequence[VectorsBatch], weights: FloatArray, ratio: bool
+) -> FloatArray:
+    """Per replay, the within-variant slope of the outcome on the covariates (``weights``),
+    pooled over the variants ``arms``.
 
     A covariate without within-variant variation (all units alike, or collinear with the
     other) gets the least-squares minimum-norm share, 0 if it never varies.
     """
-    s_cc = np.zeros((2, 2))
-    s_cy = np.zeros(2)
-    for n, mean, cov in arms:
-        _, w = _outcome(names, mean, ratio)
-        s_cc += (n - 1) * (weights.T @ cov @ weights)
-        s_cy += (n - 1) * (weights.T @ cov @ w)
-    scale = np.sqrt(np.clip(np.diag(s_cc), 0.0, None))
+    w_t = np.swapaxes(weights, 1, 2)
+    s_cc = np.zeros((weights.shape[0], 2, 2))
+    s_cy = np.zeros((weights.shape[0], 2))
+    for arm in arms:
+        _, w = _outcome(names, arm.mean, ratio)
+        dof = arm.n - 1
+        s_cc += dof[:, None, None] * (w_t @ arm.cov @ weights)
+        s_cy += dof[:, None] * (w_t @ arm.cov @ w[:, :, None])[:, :, 0]
+    scale = np.sqrt(np.clip(np.diagonal(s_cc, axis1=1, axis2=2), 0.0, None))
     keep = scale > 0
-    theta = np.zeros(2)
-    if keep.any():
-        sub = s_cc[np.ix_(keep, keep)] / np.outer(scale[keep], scale[keep])
-        solved = np.linalg.lstsq(sub, s_cy[keep] / scale[keep], rcond=1e-12)[0]
-        theta[keep] = solved / scale[keep]
-    return theta
+    safe = np.where(keep, scale, 1.0)
+    both = keep[:, :, None] & keep[:, None, :]
+    with np.errstate(all="ignore"):
+        sub = np.where(both, s_cc / (safe[:, :, None] * safe[:, None, :]), 0.0)
+        rhs = np.where(keep, s_cy / safe, 0.0)
+    # the minimum-norm least-squares solution; a covariate left out has a zero row
+    solved = (np.linalg.pinv(sub, rcond=1e-12) @ rhs[:, :, None])[:, :, 0]
+    return np.where(keep, solved / safe, 0.0)
+
+
+def cuped_batch(names: tuple[str, ...], arms: Sequence[VectorsBatch]) -> CupedBatch:
+    """Every variant's CUPED-adjusted moments, for many replays at once; θ is pooled over
+    all of ``arms``. The arithmetic of the scorecard (``cuped_compare``) and of the A/A
+    replay. Unusable moments give non-finite values, not errors."""
+    if names not in (PER_UNIT, RATIO):
+        raise StatsError(f"CUPED moments must name the variables {PER_UNIT} or {RATIO}")
+    ratio = names == RATIO
+    weights = _covariates(names, arms, ratio)
+    theta = pooled_theta(names, arms, weights, ratio)
+    w_t = np.swapaxes(weights, 1, 2)
+    centre = _pooled(arms, np.stack([(w_t @ a.mean[:, :, None])[:, :, 0] for a in arms]))
+    out = CupedBatch([], [], [], [], theta)
+    for arm in arms:
+        value, w = _outcome(names, arm.mean, ratio)
+        with np.errstate(all="ignore"):
+            residual = w - (weights @ theta[:, :, None])[:, :, 0]
+            shift = np.sum(theta * ((w_t @ arm.mean[:, :, None])[:, :, 0] - centre), axis=1)
+            variance = np.einsum("rk,rkl,rl->r", residual, arm.cov, residual)
+            plain = np.einsum("rk,rkl,rl->r", w, arm.cov, w)
+            out.adjusted.append(
+                MomentsBatch.of_means(arm.n, value - shift, np.maximum(variance, 0.0))
+            )
+            out.plain.append(np.maximum(plain, 0.0) / arm.n)
+        out.observed.append(value)
+        out.has_pre.append(arm.mean[:, names.index("h")] != 0)
+    return out
 
 
 def cuped_compare(
@@ -141,38 +208,34 @@ def cuped_compare(
     if len(layouts) != 1 or next(iter(layouts)) not in (PER_UNIT, RATIO):
         raise StatsError(f"CUPED moments must name the variables {PER_UNIT} or {RATIO}")
     names = layouts.pop()
-    ratio = names == RATIO
     for variant in (treatment, control):
         if arms[variant].n < 2:
             raise StatsError(f"needs at least 2 units, has {arms[variant].n}")
         if arms[variant].mean[arms[variant].names.index("h")] == 0:
             raise StatsError(f"no unit of variant '{variant}' has pre-period data")
-    arrays = {v: (a.n, *a.arrays()) for v, a in arms.items()}
-    every = list(arrays.values())
-    weights = _covariates(names, every, ratio)
-    theta = pooled_theta(names, every, weights, ratio)
-    total = sum(n for n, _, _ in every)
-    centre = sum(n * (weights.T @ mean) for n, mean, _ in every) / total
-    adjusted: dict[str, Moments] = {}
-    observed: dict[str, float] = {}
-    plain = 0.0
-    for variant in (treatment, control):
-        n, mean, cov = arrays[variant]
-        value, w = _outcome(names, mean, ratio)
-        residual = w - weights @ theta
-        shift = float(theta @ (weights.T @ mean - centre))
-        variance = max(float(residual @ cov @ residual), 0.0)
-        adjusted[variant] = Moments.of_mean(n, value - shift, variance)
-        observed[variant] = value
-        plain += max(float(w @ cov @ w), 0.0) / n
-    effect = compare(adjusted[treatment], adjusted[control], alpha=alpha, **test)
+    order = list(arms)
+    batches = [VectorsBatch.of(arms[v]) for v in order]
+    if names == RATIO and any(b.mean[0, names.index("y")] == 0 for b in batches):
+        raise StatsError("the denominator's mean is zero for this variant")
+    result = cuped_batch(names, batches)
+    t, c = order.index(treatment), order.index(control)
+    adjusted = {
+        k: Moments.of_mean(
+            arms[order[k]].n,
+            float(result.adjusted[k].mean_x[0]),
+            float(result.adjusted[k].var_x[0]),
+        )
+        for k in (t, c)
+    }
+    effect = compare(adjusted[t], adjusted[c], alpha=alpha, **test)
     after = sum(m.var_x / m.n for m in adjusted.values())
-    method = ("delta" if ratio else "welch") + "+cuped"
+    plain = float(result.plain[t][0] + result.plain[c][0])
     effect = dataclasses.replace(
         effect,
-        value=observed[treatment],
-        control_value=observed[control],
-        method=method,
+        value=float(result.observed[t][0]),
+        control_value=float(result.observed[c][0]),
+        method=("delta" if names == RATIO else "welch") + "+cuped",
     )
     reduction = 1.0 - after / plain if plain > 0 else 0.0
+    theta = result.theta[0]
     return CupedEffect(effect, reduction, (float(theta[0]), float(theta[1])))

@@ -104,6 +104,56 @@ def _tail(stat: FloatArray, df: FloatArray) -> FloatArray:
         return np.asarray(st.t.sf(stat, df), np.float64)
 
 
+def check_hypothesis(side: int, margin: float | None) -> None:
+    """A StatsError unless ``side`` is 0 or ±1 and a margin is positive and one-sided."""
+    if side not in (-1, 0, 1) or (margin is not None and (side == 0 or not margin > 0)):
+        raise StatsError("a margin needs a one-sided test (side ±1) and must be positive")
+
+
+def margin_factor(c_val: FloatArray, side: int, margin: float | None) -> FloatArray | float:
+    """k of the tested contrast t − k·c: 1, or 1 ± margin for non-inferiority (the margin
+    taken on the bad side of the control's absolute value)."""
+    if margin is None:
+        return 1.0
+    return 1.0 + side * margin * np.where(c_val < 0, -1.0, 1.0)
+
+
+def evidence_sign(side: int, margin: float | None) -> float:
+    """The sign that makes a large contrast evidence against H0 in a one-sided test: harm,
+    large side·(t − c); non-inferiority, large −side·(t − k·c)."""
+    return float(side) if margin is None else -float(side)
+
+
+def with_relative(
+    t_val: FloatArray,
+    v_t: FloatArray,
+    c_val: FloatArray,
+    v_c: FloatArray,
+    z: float,
+    *,
+    diff: FloatArray,
+    low: FloatArray,
+    high: FloatArray,
+    p: FloatArray,
+    method: npt.NDArray[np.str_],
+) -> EffectBatch:
+    """The effects with the relative effect t/c − 1 added (delta method, or Fieller's
+    interval where ``relative_interval`` chooses it; ``method`` then gains "+fieller")."""
+    rel, rel_low, rel_high, fieller = relative_interval(t_val, v_t, c_val, v_c, z)
+    return EffectBatch(
+        value=t_val,
+        control_value=c_val,
+        abs_effect=diff,
+        abs_ci_low=low,
+        abs_ci_high=high,
+        rel_effect=rel,
+        rel_ci_low=rel_low,
+        rel_ci_high=rel_high,
+        p_value=np.clip(p, 0.0, 1.0),
+        method=np.char.add(method, np.where(fieller, "+fieller", "")),
+    )
+
+
 def compare_batch(
     t: MomentsBatch,
     c: MomentsBatch,
@@ -115,8 +165,7 @@ def compare_batch(
     """Treatment ``t`` against control ``c``, element by element (see the module doc)."""
     if not 0.0 < alpha < 1.0:
         raise StatsError(f"alpha must lie strictly between 0 and 1, is {alpha}")
-    if side not in (-1, 0, 1) or (margin is not None and (side == 0 or not margin > 0)):
-        raise StatsError("a margin needs a one-sided test (side ±1) and must be positive")
+    check_hypothesis(side, margin)
     t_val, v_t = delta_ratio(t)
     c_val, v_c = delta_ratio(c)
     ratio = t.is_ratio | c.is_ratio
@@ -131,9 +180,8 @@ def compare_batch(
         half = np.where(var > 0, half, 0.0)  # no variance: the difference is known exactly
         low, high = diff - half, diff + half
         # The tested contrast is t − k·c: k = 1, or 1 ± margin for non-inferiority.
-        k: FloatArray | float = 1.0
+        k = margin_factor(c_val, side, margin)
         if margin is not None:
-            k = 1.0 + side * margin * np.where(c_val < 0, -1.0, 1.0)
             var = v_t + k * k * v_c
             df = np.where(normal, np.inf, welch_df_batch(v_t, t.n, k * k * v_c, c.n))
         contrast = t_val - k * c_val
@@ -141,8 +189,7 @@ def compare_batch(
             stat, tails = np.abs(contrast) / np.sqrt(var), 2.0
             known = np.where(contrast == 0, 1.0, 0.0)  # no variance at all
         else:
-            # harm: large side·(t − c) is evidence; non-inferiority: large −side·(t − k c)
-            sign = float(side) if margin is None else -float(side)
+            sign = evidence_sign(side, margin)
             stat, tails = sign * contrast / np.sqrt(var), 1.0
             known = np.where(sign * contrast > 0, 0.0, 1.0)
     p = np.where(var > 0, tails * _tail(stat, df), known)
@@ -157,18 +204,8 @@ def compare_batch(
             method = np.full(p.shape, "newcombe+wald")
     else:
         method = np.where(ratio, "delta", "welch")
-    rel, rel_low, rel_high, fieller = relative_interval(t_val, v_t, c_val, v_c, z)
-    return EffectBatch(
-        value=t_val,
-        control_value=c_val,
-        abs_effect=diff,
-        abs_ci_low=low,
-        abs_ci_high=high,
-        rel_effect=rel,
-        rel_ci_low=rel_low,
-        rel_ci_high=rel_high,
-        p_value=np.clip(p, 0.0, 1.0),
-        method=np.char.add(method, np.where(fieller, "+fieller", "")),
+    return with_relative(
+        t_val, v_t, c_val, v_c, z, diff=diff, low=low, high=high, p=p, method=method
     )
 
 

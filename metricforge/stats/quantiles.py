@@ -20,9 +20,14 @@ import numpy as np
 from scipy import stats as st
 
 from metricforge.errors import StatsError
-from metricforge.stats.effects import Effect
-from metricforge.stats.moments import Moments, ratio_point_and_variance
-from metricforge.stats.relative import relative_interval
+from metricforge.stats.effects import (
+    Effect,
+    check_hypothesis,
+    evidence_sign,
+    margin_factor,
+    with_relative,
+)
+from metricforge.stats.moments import FloatArray, Moments, ratio_point_and_variance
 
 METHOD = "outer-ci"
 
@@ -97,19 +102,17 @@ def quantile_compare(
     (+1: higher is worse): a harm test, or with a relative ``margin`` m the
     non-inferiority test of H0 "worse by m·|control| or more".
     """
-    if side not in (-1, 0, 1) or (margin is not None and (side == 0 or not margin > 0)):
-        raise StatsError("a margin needs a one-sided test (side ±1) and must be positive")
+    check_hypothesis(side, margin)
     se_t = quantile_se(treatment, q, alpha)
     se_c = quantile_se(control, q, alpha)
     z = two_sided_z(alpha)
     t, c = treatment.quantile, control.quantile
     diff = t - c
     half = z * math.hypot(se_t, se_c)
-    # the tested contrast is t − k·c: k = 1, or 1 ± margin for non-inferiority
-    k = 1.0 if margin is None else 1.0 + side * margin * (-1.0 if c < 0 else 1.0)
+    k = float(margin_factor(np.array(c), side, margin))  # the tested contrast is t − k·c
     contrast = t - k * c
     se = math.hypot(se_t, k * se_c)
-    sign = float(side) if margin is None else -float(side)
+    sign = evidence_sign(side, margin)
     if se == 0:  # no spread in either variant: the contrast is known exactly
         known = contrast == 0 if side == 0 else sign * contrast <= 0
         p = 1.0 if known else 0.0
@@ -117,21 +120,19 @@ def quantile_compare(
         p = 2.0 * float(st.norm.sf(abs(contrast) / se))
     else:
         p = float(st.norm.sf(sign * contrast / se))
-    rel, rel_low, rel_high, fieller = (
-        float(a[0])
-        for a in relative_interval(
-            np.array([t]), np.array([se_t * se_t]), np.array([c]), np.array([se_c * se_c]), z
-        )
-    )
-    return Effect(
-        value=t,
-        control_value=c,
-        abs_effect=diff,
-        abs_ci_low=diff - half,
-        abs_ci_high=diff + half,
-        rel_effect=rel,
-        rel_ci_low=rel_low,
-        rel_ci_high=rel_high,
-        p_value=p,
-        method=METHOD + ("+fieller" if fieller else ""),
-    )
+
+    def one(v: float) -> FloatArray:
+        return np.array([v], np.float64)
+
+    return with_relative(
+        one(t),
+        one(se_t * se_t),
+        one(c),
+        one(se_c * se_c),
+        z,
+        diff=one(diff),
+        low=one(diff - half),
+        high=one(diff + half),
+        p=one(p),
+        method=np.array([METHOD]),
+    ).item()

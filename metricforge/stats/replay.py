@@ -1,14 +1,17 @@
 """A/A replay on hash buckets: re-randomise whole buckets of units, many times at once.
 
-Units were reduced once to a few thousand hash buckets, each holding every metric's
-(n, mean, M2) and, for ratios, (mean_y, M2_y, C_xy) over its units. A replay assigns every
+Units were reduced once to a few thousand hash buckets, each holding every metric's count,
+means and sums of squared and cross deviations (M2) of its per-unit variables (x; x and y
+for a ratio; with CUPED also the covariates) over its units. A replay assigns every
 bucket to a variant (a salted 64-bit hash of replay and bucket against the planned split),
 so a variant's moments are a merge of bucket moments. Merging uses deviations from the
 overall mean, never raw power sums: with d_b = mean_b − μ,
     Σ(x − μ)² over an arm = Σ_b (M2_b + n_b d_b²),   Σ(x − μ) = Σ_b n_b d_b,
     M2_arm = Σ(x − μ)² − (Σ(x − μ))² / n_arm,
-where the subtracted term is about 1/n of the first (the arm mean lies within a standard
-error of μ), so nothing cancels. All replays' sums are one matrix product per arm.
+(and likewise for every pair of variables), where the subtracted term is about 1/n of the
+first (the arm mean lies within a standard error of μ), so nothing cancels. All replays'
+sums are one matrix product per arm. The p-values then come from the scorecard's own
+functions (``p_values``).
 """
 
 from __future__ import annotations
@@ -19,9 +22,11 @@ from dataclasses import dataclass
 
 import numpy as np
 import numpy.typing as npt
-from scipy import stats as st
 
 from metricforge.errors import StatsError
+from metricforge.stats.cuped import PER_UNIT, RATIO, VectorsBatch, cuped_batch
+from metricforge.stats.effects import compare_batch
+from metricforge.stats.moments import MomentsBatch
 
 Array = npt.NDArray[np.float64]
 IntArray = npt.NDArray[np.int64]
@@ -30,30 +35,32 @@ _U64 = npt.NDArray[np.uint64]
 
 @dataclass(frozen=True)
 class BucketMoments:
-    """One metric's moments per bucket; the y parts are None for a per-unit mean metric."""
+    """One metric's moments per bucket of its named per-unit variables: ``x`` (and ``y``
+    for a ratio; with CUPED also the covariates, see ``stats.cuped``). ``n`` (buckets,),
+    ``mean`` (buckets, k), ``m2`` (buckets, k, k): sums of products of deviations from the
+    bucket's means (M2 = n · population (co)variance)."""
 
+    names: tuple[str, ...]
     n: Array
-    mean_x: Array
-    m2_x: Array
-    mean_y: Array | None = None
-    m2_y: Array | None = None
-    c_xy: Array | None = None
-
-    @property
-    def is_ratio(self) -> bool:
-        return self.mean_y is not None
+    mean: Array
+    m2: Array
 
 
 @dataclass(frozen=True)
 class ArmMoments:
-    """Per replay (arrays of one value per replay): a variant's moments of one metric."""
+    """One variant's moments of a metric's variables, per replay: ``n`` (R,), ``mean``
+    (R, k), ``cov`` (R, k, k) with divisor n − 1."""
 
+    names: tuple[str, ...]
     n: Array
-    mean_x: Array
-    var_x: Array
-    mean_y: Array | None = None
-    var_y: Array | None = None
-    cov_xy: Array | None = None
+    mean: Array
+    cov: Array
+
+    def mean_of(self, name: str) -> Array:
+        return self.mean[:, self.names.index(name)]
+
+    def cov_of(self, a: str, b: str) -> Array:
+        return self.cov[:, self.names.index(a), self.names.index(b)]
 
 
 _GAMMA = np.uint64(0x9E3779B97F4A7C15)  # the 64-bit golden-ratio increment
@@ -90,11 +97,12 @@ def assign(hashes: _U64, shares: Sequence[float]) -> npt.NDArray[np.int8]:
 
 @dataclass(frozen=True)
 class _Columns:
-    """One metric's bucket moments as deviation columns about its overall mean."""
+    """One metric's bucket moments as deviation columns about its overall means: n, then
+    Σ n_b d_b per variable, then Σ (M2_b + n_b d_b d_bᵀ) per pair of variables."""
 
-    mu_x: float
-    mu_y: float
-    columns: Array  # (buckets, 3), or (buckets, 6) for a ratio
+    names: tuple[str, ...]
+    mu: Array  # (k,) the overall means
+    columns: Array  # (buckets, 1 + k + k(k+1)/2)
 
     @classmethod
     def of(cls, b: BucketMoments) -> _Columns:
@@ -102,39 +110,27 @@ class _Columns:
         total = n.sum()
         if total <= 0:
             raise StatsError("no units in any bucket")
-
-        def centre(mean: Array, m2: Array) -> tuple[float, Array, Array, Array]:
-            mean = np.where(n > 0, np.nan_to_num(mean), 0.0)
-            mu = float(np.dot(n, mean) / total)
-            d = np.where(n > 0, mean - mu, 0.0)
-            return mu, d, n * d, np.nan_to_num(m2) + n * d * d
-
-        mu_x, dx, s1x, s2x = centre(b.mean_x, b.m2_x)
-        if b.mean_y is None or b.m2_y is None or b.c_xy is None:
-            return cls(mu_x, 1.0, np.column_stack([n, s1x, s2x]))
-        mu_y, dy, s1y, s2y = centre(b.mean_y, b.m2_y)
-        sxy = np.nan_to_num(b.c_xy) + n * dx * dy
-        return cls(mu_x, mu_y, np.column_stack([n, s1x, s2x, s1y, s2y, sxy]))
+        mean = np.where(n[:, None] > 0, np.nan_to_num(b.mean), 0.0)
+        mu = (n @ mean) / total
+        d = np.where(n[:, None] > 0, mean - mu, 0.0)
+        s2 = np.nan_to_num(b.m2) + n[:, None, None] * d[:, :, None] * d[:, None, :]
+        upper = np.triu_indices(len(b.names))
+        return cls(b.names, mu, np.column_stack([n, n[:, None] * d, s2[:, upper[0], upper[1]]]))
 
     def arm(self, sums: Array) -> ArmMoments:
         """Moments of one arm per replay from its summed columns."""
-        n = sums[:, 0]
+        k = len(self.names)
+        n, s1 = sums[:, 0], sums[:, 1 : 1 + k]
+        upper = np.triu_indices(k)
+        s2 = np.zeros((len(n), k, k))
+        s2[:, upper[0], upper[1]] = sums[:, 1 + k :]
+        s2[:, upper[1], upper[0]] = sums[:, 1 + k :]
         with np.errstate(divide="ignore", invalid="ignore"):
-            dof = n - 1.0
-            s1x = sums[:, 1]
-            mean_x = self.mu_x + s1x / n
-            var_x = (sums[:, 2] - s1x * s1x / n) / dof
-            if sums.shape[1] == 3:
-                return ArmMoments(n=n, mean_x=mean_x, var_x=var_x)
-            s1y = sums[:, 3]
-            return ArmMoments(
-                n=n,
-                mean_x=mean_x,
-                var_x=var_x,
-                mean_y=self.mu_y + s1y / n,
-                var_y=(sums[:, 4] - s1y * s1y / n) / dof,
-                cov_xy=(sums[:, 5] - s1x * s1y / n) / dof,
-            )
+            mean = self.mu + s1 / n[:, None]
+            cov = (s2 - s1[:, :, None] * s1[:, None, :] / n[:, None, None]) / (n - 1.0)[
+                :, None, None
+            ]
+        return ArmMoments(self.names, n, mean, cov)
 
 
 class BucketSplitter:
@@ -169,36 +165,59 @@ class BucketSplitter:
         }
 
 
-def _estimate(m: ArmMoments, independent_events: bool) -> tuple[Array, Array]:
-    """Point estimate and its variance per replay: the mean, or the ratio by the delta
-    method; ``independent_events`` is the deliberately wrong binomial variance r(1 − r)/ΣY
-    that treats every denominator event as independent (test-only)."""
-    with np.errstate(divide="ignore", invalid="ignore"):
-        if m.mean_y is None or m.var_y is None or m.cov_xy is None:
-            return m.mean_x, m.var_x / m.n
-        r = m.mean_x / m.mean_y
-        if independent_events:
-            return r, r * (1.0 - r) / (m.n * m.mean_y)
-        resid = m.var_x - 2.0 * (r * m.cov_xy) + r * (r * m.var_y)
-        return r, np.maximum(resid, 0.0) / m.n / m.mean_y / m.mean_y
+def _plain(arm: ArmMoments, proportion: bool, independent_events: bool) -> MomentsBatch:
+    """The moments ``compare_batch`` takes, from an arm's variables x (and y).
+
+    A proportion's count of units with value 1 is n · mean, a whole number up to rounding.
+    ``independent_events`` (ratios, test-only) replaces the delta-method variance by the
+    deliberately wrong binomial r(1 − r)/ΣY, as if every denominator event were
+    independent: the residual variance is set to r(1 − r)·ȳ.
+    """
+    n, mean_x, var_x = arm.n, arm.mean_of("x"), arm.cov_of("x", "x")
+    if "y" not in arm.names:
+        if proportion:
+            return MomentsBatch.of_proportions(n, np.rint(n * mean_x))
+        return MomentsBatch.of_means(n, mean_x, var_x)
+    mean_y, zero = arm.mean_of("y"), np.zeros_like(n)
+    if independent_events:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            r = mean_x / mean_y
+        return MomentsBatch(n, mean_x, mean_y, r * (1.0 - r) * mean_y, zero, zero)
+    return MomentsBatch(n, mean_x, mean_y, var_x, arm.cov_of("y", "y"), arm.cov_of("x", "y"))
 
 
 def p_values(
-    treatment: ArmMoments, control: ArmMoments, *, independent_events: bool = False
-) -> Array:
-    """Two-sided p-value per replay: Welch's t for means, a z test for ratios (as in
-    ``stats.compare``); NaN where an arm has fewer than two units."""
-    t_val, v_t = _estimate(treatment, independent_events)
-    c_val, v_c = _estimate(control, independent_events)
-    diff = t_val - c_val
-    se = np.sqrt(v_t + v_c)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        score = np.abs(diff) / se
-        if treatment.mean_y is not None:
-            p = 2.0 * st.norm.sf(score)
-        else:
-            w_t, w_c = v_t / (v_t + v_c), v_c / (v_t + v_c)
-            df = 1.0 / (w_t * w_t / (treatment.n - 1) + w_c * w_c / (control.n - 1))
-            p = 2.0 * st.t.sf(score, df)
-    p = np.where(se == 0, np.where(diff == 0, 1.0, 0.0), p)
-    return np.where((treatment.n < 2) | (control.n < 2), np.nan, p).astype(np.float64)
+    arms: Sequence[ArmMoments],
+    *,
+    proportion: bool = False,
+    alpha: float = 0.05,
+    side: int = 0,
+    margin: float | None = None,
+    independent_events: bool = False,
+) -> list[Array]:
+    """Per treatment arm (arms[1:]), its p-value against arms[0] in every replay, from the
+    scorecard's own code: ``compare_batch`` with the metric's hypothesis (``side``,
+    ``margin``) on the arms' moments; when the variables carry CUPED covariates
+    (``stats.cuped.PER_UNIT`` or ``RATIO``), on the moments adjusted by ``cuped_batch``
+    (θ pooled over all arms), falling back to the unadjusted test where an arm has no
+    pre-period data, as the scorecard does. NaN where an arm has fewer than two units."""
+
+    def tested(t: MomentsBatch, c: MomentsBatch) -> Array:
+        return compare_batch(t, c, alpha=alpha, side=side, margin=margin).p_value
+
+    plain = [_plain(a, proportion, independent_events) for a in arms]
+    names = arms[0].names
+    adjusted = (
+        cuped_batch(names, [VectorsBatch(a.n, a.mean, a.cov) for a in arms])
+        if names in (PER_UNIT, RATIO)
+        else None
+    )
+    out = []
+    for k in range(1, len(arms)):
+        p = tested(plain[k], plain[0])
+        if adjusted is not None:
+            usable = adjusted.has_pre[k] & adjusted.has_pre[0]
+            p = np.where(usable, tested(adjusted.adjusted[k], adjusted.adjusted[0]), p)
+        few = (arms[k].n < 2) | (arms[0].n < 2)
+        out.append(np.where(few, np.nan, p).astype(np.float64))
+    return out
