@@ -95,7 +95,7 @@ class _Builder:
     def __init__(self, plan: Plan, dialect: str) -> None:
         self.plan = plan
         self.spec = plan.spec
-        self.ordered = dialect == "duckdb"  # ordered aggregates make the result bit-stable
+        self.dialect = dialect
 
     # -- stage 1 -------------------------------------------------------------------------
     def first_exposure(self) -> exp.Select:
@@ -370,15 +370,12 @@ class _Builder:
 
     # -- stage 5 -------------------------------------------------------------------------
     def _agg(self, cls: type[exp.Func], col: str, other: str | None = None) -> exp.Expr:
-        this: exp.Expr = _col(col)
-        if self.ordered and other is None:
-            this = exp.Order(this=this, expressions=[exp.Ordered(this=_col("unit"))])
+        # No ORDER BY inside the aggregates: engines feed the result queries the units in one
+        # fixed order (DuckDB: unit_rows read back sorted by unit, queried on one thread), so
+        # runs are bit-identical without a sort per aggregate.
         if other is not None:
-            second: exp.Expr = _col(other)
-            if self.ordered:
-                second = exp.Order(this=second, expressions=[exp.Ordered(this=_col("unit"))])
-            return cls(this=this, expression=second)
-        return cls(this=this)
+            return cls(this=_col(col), expression=_col(other))
+        return cls(this=_col(col))
 
     def moments(self) -> exp.Select:
         select = exp.select(
