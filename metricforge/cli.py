@@ -61,9 +61,14 @@ def run(
     strict: Annotated[
         bool, typer.Option("--strict", help=f"Exit with {STRICT_EXIT} when a trust check fails.")
     ] = False,
+    memory_limit: Annotated[
+        str | None,
+        typer.Option(help="Engine memory limit, e.g. 4GB (the default); 'none': 80% of RAM."),
+    ] = None,
 ) -> None:
     """Compute the scorecard of one experiment and write it to OUT, all or nothing."""
     from metricforge.engines.duckdb import DuckDBEngine
+    from metricforge.progress import terminal_display
     from metricforge.report.files import write_outputs
     from metricforge.report.scorecard import build
     from metricforge.report.terminal import render
@@ -72,7 +77,10 @@ def run(
 
     def action() -> bool:
         plan = load_plan(pipeline, bot_filter=bot_filter)
-        data = execute(plan, DuckDBEngine(threads=threads))
+        engine = DuckDBEngine(
+            threads=threads, memory_limit=memory_limit, progress=terminal_display()
+        )
+        data = execute(plan, engine)
         card = build(data)
         write_outputs(out, data, card)
         render(card, out_console)

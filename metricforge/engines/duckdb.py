@@ -1,7 +1,14 @@
-"""The embedded default engine: DuckDB, locked down before any compiled query runs."""
+"""The embedded default engine: DuckDB, locked down before any compiled query runs.
+
+A run is two steps. The heavy one scans the events with every thread and stores
+``unit_rows``; that table is read back in unit order into a second, single-threaded
+DuckDB, where the small result queries run. One thread over one fixed order makes every
+floating-point aggregate bit-identical from run to run without sorting per aggregate.
+"""
 
 from __future__ import annotations
 
+import re
 import tempfile
 from pathlib import Path
 
@@ -9,11 +16,25 @@ import duckdb
 import pyarrow as pa
 import sqlglot.expressions as exp
 
-from metricforge.compile.query import CompiledRun
+from metricforge.compile.query import UNIT_TABLE, CompiledRun
 from metricforge.engines.base import EngineInputs
 from metricforge.errors import EngineError
+from metricforge.progress import DisplayFactory, watch
 
-DEFAULT_MEMORY_LIMIT = "4GB"
+DEFAULT_MEMORY_LIMIT = "4GB"  # beyond it DuckDB spills to a temporary folder
+_MEMORY = re.compile(r"\d+(\.\d+)?\s*([KMGT]i?B|B)", re.IGNORECASE)
+
+
+def checked_memory_limit(text: str | None) -> str:
+    """A checked memory limit: e.g. 4GB or 512MiB; 'none' is DuckDB's default (80% of RAM)."""
+    if text is None:
+        return DEFAULT_MEMORY_LIMIT
+    if text.strip().lower() == "none" or _MEMORY.fullmatch(text.strip()):
+        return text.strip()
+    raise EngineError(
+        f"memory limit '{text}' is not a size such as 4GB or 512MiB, or 'none'",
+        key="--memory-limit",
+    )
 
 
 def _set(name: str, value: exp.Expr) -> str:
@@ -29,12 +50,14 @@ class DuckDBEngine:
         self,
         *,
         threads: int | None = None,
-        memory_limit: str = DEFAULT_MEMORY_LIMIT,
+        memory_limit: str | None = DEFAULT_MEMORY_LIMIT,
         temp_dir: Path | None = None,
+        progress: DisplayFactory | None = None,
     ) -> None:
         self.threads = threads
-        self.memory_limit = memory_limit
+        self.memory_limit = checked_memory_limit(memory_limit)
         self.temp_dir = temp_dir
+        self.progress = progress  # draws a bar while unit_rows is built (terminals only)
 
     def version(self) -> str:
         return str(duckdb.__version__)
@@ -58,6 +81,9 @@ class DuckDBEngine:
             )
         )
         con.execute(_set("enable_external_access", exp.false()))
+        if self.progress is not None:  # the engine's progress figure, without its own bar
+            con.execute(_set("enable_progress_bar", exp.true()))
+            con.execute(_set("enable_progress_bar_print", exp.false()))
         con.execute(_set("lock_configuration", exp.true()))
         events = con.read_parquet(
             [str(p) for p in inputs.events], hive_partitioning=inputs.hive, union_by_name=True
@@ -76,20 +102,43 @@ class DuckDBEngine:
         if not all(isinstance(q, exp.Select) for q in queries):
             raise EngineError("refusing to run anything but SELECT queries")
         store = compiled.materialise(self.dialect).sql(dialect=self.dialect)
+        in_order = exp.select("*").from_(UNIT_TABLE).order_by("unit").sql(dialect=self.dialect)
         with tempfile.TemporaryDirectory(prefix="metricforge-spill-", dir=self.temp_dir) as tmp:
             try:
                 con = self._connect(inputs, Path(tmp))
                 try:
-                    con.execute(store)
+                    with watch(con, self.progress):
+                        con.execute(store)
+                    units = _fetch(con.sql(in_order))
+                finally:
+                    con.close()
+                results = self._results_connection(units)
+                try:
                     return {
-                        name: _fetch(con.sql(query.sql(dialect=self.dialect)))
+                        name: _fetch(results.sql(query.sql(dialect=self.dialect)))
                         for name, query in compiled.results
                     }
                 finally:
-                    con.close()
+                    results.close()
             except duckdb.Error as err:
                 first = str(err).splitlines()[0]
                 raise EngineError(f"DuckDB failed: {first}") from None
+
+    def _results_connection(self, units: pa.Table) -> duckdb.DuckDBPyConnection:
+        """A locked, single-threaded DuckDB holding ``units`` (in unit order) as unit_rows."""
+        con = duckdb.connect(
+            ":memory:",
+            config={
+                "threads": 1,
+                "memory_limit": self.memory_limit,
+                "autoinstall_known_extensions": False,
+                "autoload_known_extensions": False,
+                "enable_external_access": False,
+                "lock_configuration": True,
+            },
+        )
+        con.register(UNIT_TABLE, units)
+        return con
 
 
 def _fetch(relation: duckdb.DuckDBPyRelation) -> pa.Table:
