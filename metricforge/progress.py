@@ -79,18 +79,20 @@ def watch(
     source: ProgressSource,
     make_display: DisplayFactory | None,
     *,
-    delay: float = DELAY_S,
-    interval: float = INTERVAL_S,
+    delay: float | None = None,
+    interval: float | None = None,
 ) -> Iterator[None]:
     """Poll ``source`` from a daemon thread while the body runs (a no-op without a display)."""
     if make_display is None:
         yield
         return
-    poller = Poller(source, make_display, time.monotonic(), delay=delay)
+    wait = INTERVAL_S if interval is None else interval
+    start = time.monotonic()
+    poller = Poller(source, make_display, start, delay=DELAY_S if delay is None else delay)
     stop = threading.Event()
 
     def loop() -> None:
-        while not stop.wait(interval):
+        while not stop.wait(wait):
             poller.tick(time.monotonic())
 
     thread = threading.Thread(target=loop, name="metricforge-progress", daemon=True)
