@@ -63,7 +63,9 @@ def run(
     ] = False,
     memory_limit: Annotated[
         str | None,
-        typer.Option(help="Engine memory limit, e.g. 4GB (the default); 'none': 80% of RAM."),
+        typer.Option(
+            help="Engine memory limit (default 3.5GB; spills beyond it); 'none': 80% of RAM."
+        ),
     ] = None,
 ) -> None:
     """Compute the scorecard of one experiment and write it to OUT, all or nothing."""

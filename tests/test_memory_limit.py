@@ -1,4 +1,4 @@
-"""The engine's memory limit: 4GB by default, settable with --memory-limit, checked early."""
+"""The engine's memory limit: 3.5GB by default, settable with --memory-limit, checked early."""
 
 from __future__ import annotations
 
@@ -30,14 +30,14 @@ def test_refused_limits(given: str) -> None:
         checked_memory_limit(given)
 
 
-@pytest.mark.parametrize(("given", "setting"), [(None, "3.7 GiB"), ("300MB", "286.1 MiB")])
+@pytest.mark.parametrize(("given", "setting"), [(None, "3.2 GiB"), ("300MB", "286.1 MiB")])
 def test_the_connection_carries_the_limit(given: str | None, setting: str) -> None:
     inputs, _ = gather_inputs(load_plan(PIPELINES / "checkout_layout.toml"))
     with tempfile.TemporaryDirectory() as tmp:
         con = DuckDBEngine(memory_limit=given)._connect(inputs, Path(tmp))
         found = con.execute("SELECT current_setting('memory_limit')").fetchall()[0][0]
         con.close()
-    assert found == setting  # DuckDB reports 4GB (10^9 bytes) in GiB
+    assert found == setting  # DuckDB reports sizes given in GB (10^9 bytes) in GiB
 
 
 def test_bad_limit_on_the_command_line_is_one_line(tmp_path: Path) -> None:

@@ -21,7 +21,7 @@ from metricforge.engines.base import EngineInputs
 from metricforge.errors import EngineError
 from metricforge.progress import DisplayFactory, watch
 
-DEFAULT_MEMORY_LIMIT = "4GB"  # beyond it DuckDB spills to a temporary folder
+DEFAULT_MEMORY_LIMIT = "3.5GB"  # beyond it DuckDB spills; the process stays under 4 GB
 _MEMORY = re.compile(r"\d+(\.\d+)?\s*([KMGT]i?B|B)", re.IGNORECASE)
 
 
