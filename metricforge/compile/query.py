@@ -149,8 +149,7 @@ class _Builder:
         )
         select = exp.select(
             _col("unit", f),
-            _col("variant", f),
-            _col("n_variants", f),
+            *self._carried(f),
             exp.alias_(_col("session_id", e), "session"),
             exp.alias_(n_events, "n_events"),
         )
@@ -163,9 +162,7 @@ class _Builder:
             flag = self._rule_flag(rule, e)
             if flag is not None:
                 flag = _and(flag, in_window.copy() if in_window is not None else None)
-                select = select.select(
-                    exp.alias_(exp.Max(this=_case(flag, _lit(1), _lit(0))), f"bot_rule_{i}")
-                )
+                select = select.select(exp.alias_(exp.LogicalOr(this=flag), f"bot_rule_{i}"))
         for metric in self.plan.metrics:
             select = select.select(*self._session_parts(metric, e, "", in_window))
             if in_window is not None:
@@ -174,15 +171,22 @@ class _Builder:
         return (
             select.from_(exp.alias_(exp.to_table("first_exposure"), f, table=True))
             .join(exp.alias_(exp.to_table("events"), e, table=True), on=join_on, join_type="left")
-            .group_by(
-                _col("unit", f), _col("variant", f), _col("n_variants", f), _col("session_id", e)
-            )
+            .group_by(_col("unit", f), _col("session_id", e))
         )
+
+    @staticmethod
+    def _carried(table: str | None = None) -> list[exp.Expr]:
+        """A unit's variant and variant count, carried through a grouping by unit: they
+        depend on the unit alone, so they are not grouping keys (fewer keys to hash)."""
+        return [
+            exp.alias_(exp.AnyValue(this=_col(name, table)), name)
+            for name in ("variant", "n_variants")
+        ]
 
     def _rule_flag(self, rule: BotRule, e: str) -> exp.Expr | None:
         if rule.kind is RuleKind.USER_AGENT:
             ua = exp.Lower(this=_col("user_agent", e))
-            hits = [exp.StrPosition(this=ua, substr=_lit(t)) > _lit(0) for t in rule.tokens]
+            hits = [exp.Contains(this=ua.copy(), expression=_lit(t)) for t in rule.tokens]
             return exp.or_(*hits)
         if rule.kind is RuleKind.DENY_IP:
             return _col("ip_hash", e).isin(*[_lit(t) for t in rule.tokens])
@@ -259,8 +263,7 @@ class _Builder:
     def units(self) -> exp.Select:
         select = exp.select(
             _col("unit"),
-            _col("variant"),
-            _col("n_variants"),
+            *self._carried(),
             exp.alias_(exp.cast(exp.Sum(this=_col("n_events")), BIGINT), "n_events"),
             exp.alias_(exp.Max(this=_col("n_events")), "max_session_events"),
             exp.alias_(exp.Count(this=_col("session")), "n_sessions"),
@@ -273,13 +276,13 @@ class _Builder:
         for i, rule in enumerate(self.plan.bot_filter.rules):
             if rule.kind in (RuleKind.USER_AGENT, RuleKind.DENY_IP):
                 select = select.select(
-                    exp.alias_(exp.Max(this=_col(f"bot_rule_{i}")), f"bot_rule_{i}")
+                    exp.alias_(exp.LogicalOr(this=_col(f"bot_rule_{i}")), f"bot_rule_{i}")
                 )
         for metric in self.plan.metrics:
             select = select.select(*self._unit_parts(metric, "", "n_events" if pre else None))
             if pre:
                 select = select.select(*self._unit_parts(metric, "pre", "n_pre_events"))
-        return select.from_("sessions").group_by(_col("unit"), _col("variant"), _col("n_variants"))
+        return select.from_("sessions").group_by(_col("unit"))
 
     def _unit_parts(self, metric: MetricDef, period: str, active: str | None) -> list[exp.Expr]:
         """A metric's per-unit columns for one period; ``active`` names the session column
@@ -344,7 +347,8 @@ class _Builder:
         flags: list[exp.Expr] = []
         for i, rule in enumerate(self.plan.bot_filter.rules):
             if rule.kind in (RuleKind.USER_AGENT, RuleKind.DENY_IP):
-                flags.append(_col(f"bot_rule_{i}").eq(_lit(1)))
+                # NULL when the unit has no event in its window (or no user agent)
+                flags.append(exp.Coalesce(this=_col(f"bot_rule_{i}"), expressions=[exp.false()]))
             elif rule.kind is RuleKind.SESSION_EVENTS:
                 flags.append(_col("max_session_events") > _lit(rule.max_events))
             elif rule.kind is RuleKind.DENY_UNIT:

@@ -18,19 +18,15 @@ WITH first_exposure AS (
 ), sessions AS (
   SELECT
     f.unit,
-    f.variant,
-    f.n_variants,
+    ANY_VALUE(f.variant) AS variant,
+    ANY_VALUE(f.n_variants) AS n_variants,
     e.session_id AS session,
     COUNT(e.ts) AS n_events,
-    MAX(
-      CASE
-        WHEN STRPOS(LOWER(e.user_agent), 'bot') > 0
-        OR STRPOS(LOWER(e.user_agent), 'crawler') > 0
-        OR STRPOS(LOWER(e.user_agent), 'spider') > 0
-        OR STRPOS(LOWER(e.user_agent), 'headless') > 0
-        THEN 1
-        ELSE 0
-      END
+    BOOL_OR(
+      CAST(CONTAINS(LOWER(e.user_agent), 'bot')
+      OR CONTAINS(LOWER(e.user_agent), 'crawler')
+      OR CONTAINS(LOWER(e.user_agent), 'spider')
+      OR CONTAINS(LOWER(e.user_agent), 'headless') AS BOOLEAN)
     ) AS bot_rule_0,
     SUM(CASE WHEN e.event IN ('purchase') THEN CAST(e.value AS DECIMAL(38, 10)) END) AS s_revenue,
     COUNT(CASE WHEN e.event IN ('unsubscribe') THEN 1 END) AS s_unsubscribes,
@@ -80,18 +76,16 @@ WITH first_exposure AS (
     AND e.ts < CAST('2026-10-13 00:00:00' AS TIMESTAMP)
   GROUP BY
     f.unit,
-    f.variant,
-    f.n_variants,
     e.session_id
 ), units AS (
   SELECT
     unit,
-    variant,
-    n_variants,
+    ANY_VALUE(variant) AS variant,
+    ANY_VALUE(n_variants) AS n_variants,
     CAST(SUM(n_events) AS BIGINT) AS n_events,
     MAX(n_events) AS max_session_events,
     COUNT(session) AS n_sessions,
-    MAX(bot_rule_0) AS bot_rule_0,
+    BOOL_OR(CAST(bot_rule_0 AS BOOLEAN)) AS bot_rule_0,
     CAST(COALESCE(SUM(s_revenue), 0) AS DOUBLE) AS u_revenue,
     CAST(COALESCE(SUM(s_unsubscribes), 0) AS BIGINT) AS u_unsubscribes,
     CASE
@@ -108,16 +102,14 @@ WITH first_exposure AS (
     COUNT(session) AS d_session_success
   FROM sessions
   GROUP BY
-    unit,
-    variant,
-    n_variants
+    unit
 )
 SELECT
   unit,
   variant,
   n_events,
   (
-    bot_rule_0 = 1 OR max_session_events > 60
+    COALESCE(bot_rule_0, FALSE) OR max_session_events > 60
   ) AS is_bot,
   n_variants > 1 AS contaminated,
   CAST(u_revenue AS DOUBLE) AS x_revenue,
