@@ -1,9 +1,9 @@
 """Bit-identical results without a sort per aggregate.
 
-The result queries carry no ORDER BY inside their aggregates; the DuckDB engine reads
-unit_rows back in unit order into a one-thread DuckDB instead. The values must equal those
-of aggregates explicitly ordered by unit (the earlier formulation) bit for bit, and must
-not depend on the number of threads.
+The moments query carries no ORDER BY inside its aggregates; the DuckDB engine reads
+unit_rows back in unit order into a one-thread DuckDB instead (engines/unit_order.py). The
+values must equal those of aggregates explicitly ordered by unit (the earlier formulation)
+bit for bit, and must not depend on the number of threads.
 """
 
 from __future__ import annotations
@@ -16,6 +16,7 @@ import sqlglot.expressions as exp
 
 from metricforge.compile.query import UNIT_TABLE, CompiledRun, compile_plan
 from metricforge.engines.duckdb import DuckDBEngine
+from metricforge.engines.unit_order import one_thread_connection
 from metricforge.runner import gather_inputs
 from metricforge.spec import load_plan
 from tests.conftest import PIPELINES
@@ -95,6 +96,6 @@ def test_one_thread_reading_in_order_matches_ordered_aggregates_at_scale() -> No
         .group_by("variant")
         .order_by("variant")
     )
-    con = DuckDBEngine()._results_connection(units)
+    con = one_thread_connection(units, memory_limit="1GB")
     found = con.sql(query.sql(dialect="duckdb")).to_arrow_table()
     assert found.equals(_ordered_reference(units, query))

@@ -1,9 +1,7 @@
 """The embedded default engine: DuckDB, locked down before any compiled query runs.
 
-A run is two steps. The heavy one scans the events with every thread and stores
-``unit_rows``; that table is read back in unit order into a second, single-threaded
-DuckDB, where the small result queries run. One thread over one fixed order makes every
-floating-point aggregate bit-identical from run to run without sorting per aggregate.
+The unit query runs on every thread and stores ``unit_rows``; the result queries then run
+over it in unit order on one thread (``unit_order.py``), so runs are bit-identical.
 """
 
 from __future__ import annotations
@@ -16,8 +14,9 @@ import duckdb
 import pyarrow as pa
 import sqlglot.expressions as exp
 
-from metricforge.compile.query import UNIT_TABLE, CompiledRun
+from metricforge.compile.query import CompiledRun
 from metricforge.engines.base import EngineInputs
+from metricforge.engines.unit_order import results_in_unit_order
 from metricforge.errors import EngineError
 from metricforge.progress import DisplayFactory, watch
 
@@ -102,46 +101,16 @@ class DuckDBEngine:
         if not all(isinstance(q, exp.Select) for q in queries):
             raise EngineError("refusing to run anything but SELECT queries")
         store = compiled.materialise(self.dialect).sql(dialect=self.dialect)
-        in_order = exp.select("*").from_(UNIT_TABLE).order_by("unit").sql(dialect=self.dialect)
+        results = [(name, query.sql(dialect=self.dialect)) for name, query in compiled.results]
         with tempfile.TemporaryDirectory(prefix="metricforge-spill-", dir=self.temp_dir) as tmp:
             try:
                 con = self._connect(inputs, Path(tmp))
                 try:
                     with watch(con, self.progress):
                         con.execute(store)
-                    units = _fetch(con.sql(in_order))
+                    return results_in_unit_order(con, results, memory_limit=self.memory_limit)
                 finally:
                     con.close()
-                results = self._results_connection(units)
-                try:
-                    return {
-                        name: _fetch(results.sql(query.sql(dialect=self.dialect)))
-                        for name, query in compiled.results
-                    }
-                finally:
-                    results.close()
             except duckdb.Error as err:
                 first = str(err).splitlines()[0]
                 raise EngineError(f"DuckDB failed: {first}") from None
-
-    def _results_connection(self, units: pa.Table) -> duckdb.DuckDBPyConnection:
-        """A locked, single-threaded DuckDB holding ``units`` (in unit order) as unit_rows."""
-        con = duckdb.connect(
-            ":memory:",
-            config={
-                "threads": 1,
-                "memory_limit": self.memory_limit,
-                "autoinstall_known_extensions": False,
-                "autoload_known_extensions": False,
-                "enable_external_access": False,
-                "lock_configuration": True,
-            },
-        )
-        con.register(UNIT_TABLE, units)
-        return con
-
-
-def _fetch(relation: duckdb.DuckDBPyRelation) -> pa.Table:
-    fetch = getattr(relation, "to_arrow_table", None) or relation.arrow
-    table: pa.Table = fetch()
-    return table

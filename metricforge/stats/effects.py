@@ -5,7 +5,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
-from scipy import special
+from scipy import stats as st
 
 from metricforge.errors import StatsError
 from metricforge.stats.moments import Moments, ratio_point_and_variance
@@ -59,15 +59,15 @@ def compare(treatment: Moments, control: Moments, *, alpha: float = 0.05) -> Eff
     diff = t_val - c_val
     se = math.sqrt(v_t + v_c)
     ratio = treatment.is_ratio or control.is_ratio
-    z = float(special.ndtri(1.0 - alpha / 2.0))  # the normal quantile
+    z = float(st.norm.ppf(1.0 - alpha / 2.0))
     if se == 0:  # both arms without variance: the difference is known exactly
         p, half = (1.0 if diff == 0 else 0.0), 0.0
     elif ratio:
-        p, half = 2.0 * float(special.ndtr(-abs(diff) / se)), z * se
+        p, half = 2.0 * float(st.norm.sf(abs(diff) / se)), z * se
     else:
         df = welch_df(v_t, treatment.n, v_c, control.n)
-        p = 2.0 * float(special.stdtr(df, -(abs(diff) / se)))  # Student t tail
-        half = float(special.stdtrit(df, 1.0 - alpha / 2.0)) * se
+        p = 2.0 * float(st.t.sf(abs(diff) / se, df))
+        half = float(st.t.ppf(1.0 - alpha / 2.0, df)) * se
     rel, rel_low, rel_high = _relative(t_val, v_t, c_val, v_c, z)
     return Effect(
         value=t_val,

@@ -6,8 +6,9 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
+from scipy import stats as st
+
 from metricforge.errors import StatsError
-from metricforge.stats.chisquare import pearson
 
 
 @dataclass(frozen=True, slots=True)
@@ -37,5 +38,5 @@ def srm_test(observed: Sequence[int], planned_weights: Sequence[float]) -> SrmRe
         raise StatsError("no units to test")
     weight_sum = math.fsum(planned_weights)
     expected = tuple(total * w / weight_sum for w in planned_weights)
-    chi2, p = pearson(counts, expected, len(counts) - 1)
-    return SrmResult(chi2, len(counts) - 1, p, counts, expected)
+    chi2, p = st.chisquare(counts, expected)
+    return SrmResult(float(chi2), len(counts) - 1, float(p), counts, expected)
