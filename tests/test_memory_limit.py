@@ -9,7 +9,12 @@ import pytest
 from typer.testing import CliRunner
 
 from metricforge.cli import app
-from metricforge.engines.duckdb import DEFAULT_MEMORY_LIMIT, DuckDBEngine, checked_memory_limit
+from metricforge.engines.duckdb import (
+    DEFAULT_MEMORY_LIMIT,
+    DuckDBEngine,
+    checked_memory_limit,
+    hardened_connection,
+)
 from metricforge.errors import EngineError
 from metricforge.runner import gather_inputs
 from metricforge.spec import load_plan
@@ -33,8 +38,10 @@ def test_refused_limits(given: str) -> None:
 @pytest.mark.parametrize(("given", "setting"), [(None, "3.2 GiB"), ("300MB", "286.1 MiB")])
 def test_the_connection_carries_the_limit(given: str | None, setting: str) -> None:
     inputs, _ = gather_inputs(load_plan(PIPELINES / "checkout_layout.toml"))
+    engine = DuckDBEngine(memory_limit=given)
     with tempfile.TemporaryDirectory() as tmp:
-        con = DuckDBEngine(memory_limit=given)._connect(inputs, Path(tmp))
+        files = inputs.events + inputs.exposures
+        con = hardened_connection(files, Path(tmp), memory_limit=engine.memory_limit)
         found = con.execute("SELECT current_setting('memory_limit')").fetchall()[0][0]
         con.close()
     assert found == setting  # DuckDB reports sizes given in GB (10^9 bytes) in GiB

@@ -20,7 +20,7 @@ import pytest
 
 from metricforge.compile.query import compile_plan
 from metricforge.engines.base import EngineInputs
-from metricforge.engines.duckdb import DuckDBEngine
+from metricforge.engines.duckdb import DuckDBEngine, _register_views, hardened_connection
 from metricforge.errors import InputDataError
 from metricforge.inputs import parquet_files
 from metricforge.partitions import partition_day, prune
@@ -43,8 +43,9 @@ def _scans(inputs: EngineInputs, plan: Plan) -> list[dict[str, Any]]:
     """The operators of the unit query's plan, as EXPLAIN ANALYZE reports them (JSON)."""
     sql = compile_plan(plan).unit_rows.sql(dialect="duckdb")
     with tempfile.TemporaryDirectory() as tmp:
-        con = DuckDBEngine()._connect(inputs, Path(tmp))
+        con = hardened_connection(inputs.events + inputs.exposures, Path(tmp))
         try:
+            _register_views(con, inputs)
             text = con.execute(f"EXPLAIN (ANALYZE, FORMAT JSON) {sql}").fetchall()[0][1]
         finally:
             con.close()

@@ -41,6 +41,50 @@ def _set(name: str, value: exp.Expr) -> str:
     return exp.Set(expressions=[item]).sql(dialect="duckdb")
 
 
+def hardened_connection(
+    files: list[Path],
+    temp_dir: Path,
+    *,
+    memory_limit: str = DEFAULT_MEMORY_LIMIT,
+    threads: int | None = None,
+    progress: bool = False,
+) -> duckdb.DuckDBPyConnection:
+    """A connection that can read only the folders of ``files``, its settings locked;
+    with ``progress``, DuckDB tracks its progress figure (it prints no bar of its own)."""
+    config: dict[str, str | bool | int | float | list[str]] = {
+        "autoinstall_known_extensions": False,
+        "autoload_known_extensions": False,
+        "memory_limit": memory_limit,
+        "temp_directory": str(temp_dir),
+    }
+    if threads:
+        config["threads"] = threads
+    con = duckdb.connect(":memory:", config=config)
+    folders = sorted({str(p.resolve().parent) + "/" for p in files})
+    folders.append(str(temp_dir.resolve()) + "/")
+    con.execute(
+        _set("allowed_directories", exp.Array(expressions=[exp.Literal.string(f) for f in folders]))
+    )
+    con.execute(_set("enable_external_access", exp.false()))
+    if progress:
+        con.execute(_set("enable_progress_bar", exp.true()))
+        con.execute(_set("enable_progress_bar_print", exp.false()))
+    con.execute(_set("lock_configuration", exp.true()))
+    return con
+
+
+def _register_views(con: duckdb.DuckDBPyConnection, inputs: EngineInputs) -> None:
+    """The views ``events`` and ``exposures`` over the inputs, with only the needed columns."""
+    events = con.read_parquet(
+        [str(p) for p in inputs.events], hive_partitioning=inputs.hive, union_by_name=True
+    )
+    events.select(*[duckdb.ColumnExpression(c) for c in inputs.event_columns]).create_view("events")
+    exposures = con.read_parquet([str(p) for p in inputs.exposures], union_by_name=True)
+    exposures.select(
+        *[duckdb.ColumnExpression(c) for c in ("unit_id", "experiment", "variant", "ts")]
+    ).create_view("exposures")
+
+
 class DuckDBEngine:
     name = "duckdb"
     dialect = "duckdb"
@@ -61,41 +105,6 @@ class DuckDBEngine:
     def version(self) -> str:
         return str(duckdb.__version__)
 
-    def _connect(self, inputs: EngineInputs, temp_dir: Path) -> duckdb.DuckDBPyConnection:
-        config: dict[str, str | bool | int | float | list[str]] = {
-            "autoinstall_known_extensions": False,
-            "autoload_known_extensions": False,
-            "memory_limit": self.memory_limit,
-            "temp_directory": str(temp_dir),
-        }
-        if self.threads:
-            config["threads"] = self.threads
-        con = duckdb.connect(":memory:", config=config)
-        folders = sorted({str(p.resolve().parent) + "/" for p in inputs.events + inputs.exposures})
-        folders.append(str(temp_dir.resolve()) + "/")
-        con.execute(
-            _set(
-                "allowed_directories",
-                exp.Array(expressions=[exp.Literal.string(f) for f in folders]),
-            )
-        )
-        con.execute(_set("enable_external_access", exp.false()))
-        if self.progress is not None:  # the engine's progress figure, without its own bar
-            con.execute(_set("enable_progress_bar", exp.true()))
-            con.execute(_set("enable_progress_bar_print", exp.false()))
-        con.execute(_set("lock_configuration", exp.true()))
-        events = con.read_parquet(
-            [str(p) for p in inputs.events], hive_partitioning=inputs.hive, union_by_name=True
-        )
-        events.select(*[duckdb.ColumnExpression(c) for c in inputs.event_columns]).create_view(
-            "events"
-        )
-        exposures = con.read_parquet([str(p) for p in inputs.exposures], union_by_name=True)
-        exposures.select(
-            *[duckdb.ColumnExpression(c) for c in ("unit_id", "experiment", "variant", "ts")]
-        ).create_view("exposures")
-        return con
-
     def run(self, compiled: CompiledRun, inputs: EngineInputs) -> dict[str, pa.Table]:
         queries = [compiled.unit_rows, *(q for _, q in compiled.results)]
         if not all(isinstance(q, exp.Select) for q in queries):
@@ -104,8 +113,15 @@ class DuckDBEngine:
         results = [(name, query.sql(dialect=self.dialect)) for name, query in compiled.results]
         with tempfile.TemporaryDirectory(prefix="metricforge-spill-", dir=self.temp_dir) as tmp:
             try:
-                con = self._connect(inputs, Path(tmp))
+                con = hardened_connection(
+                    inputs.events + inputs.exposures,
+                    Path(tmp),
+                    memory_limit=self.memory_limit,
+                    threads=self.threads,
+                    progress=self.progress is not None,
+                )
                 try:
+                    _register_views(con, inputs)
                     with watch(con, self.progress):
                         con.execute(store)
                     return results_in_unit_order(con, results, memory_limit=self.memory_limit)
