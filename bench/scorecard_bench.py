@@ -11,8 +11,9 @@ Generates (or reuses) logs of about that many events with the project's own gene
   c   one hand-written DuckDB query per metric
   d   polars' streaming engine
 
-It checks that b, c and d give the tool's scorecard (after the tool's own statistics) to a
-stated tolerance and that every run of a and a0 wrote byte-identical scorecards, then prints
+It checks that b, c and d give the numbers of the tool's scorecard (their moments through
+the tool's own `metricforge.stats.compare`) to a stated tolerance and that every run of a
+and a0 wrote byte-identical scorecards, then prints
 median wall times, the ratios a/b, c/a, d/a, a/a0, events per second and peak memory (the
 child's maximum resident set, from wait4) of each, against the targets.
 """
@@ -50,8 +51,6 @@ LABELS = {
     "c": "one DuckDB query per metric",
     "d": "polars streaming",
 }
-# scorecard fields compared between contenders (the stamp and texts are the tool's own)
-SKIP_KEYS = frozenset({"stamp", "figure", "inputs_fingerprint", "spec_sha256"})
 
 
 @dataclass
@@ -129,55 +128,74 @@ def measure(cmd: list[str], log: Path) -> tuple[float, float, int]:
     return wall, usage.ru_utime + usage.ru_stime, int(usage.ru_maxrss)
 
 
-def _close(x: Any, y: Any, path: str, worst: list[float]) -> list[str]:
-    """Differences between two JSON values beyond the tolerance, as readable lines."""
-    if isinstance(x, dict) and isinstance(y, dict):
-        out: list[str] = []
-        for key in sorted(set(x) | set(y)):
-            if key not in SKIP_KEYS:
-                out += _close(x.get(key), y.get(key), f"{path}.{key}", worst)
-        return out
-    if isinstance(x, list) and isinstance(y, list):
-        if len(x) != len(y):
-            return [f"{path}: {len(x)} != {len(y)} items"]
-        return [
-            d
-            for i, (a, b) in enumerate(zip(x, y, strict=True))
-            for d in _close(a, b, f"{path}[{i}]", worst)
-        ]
-    if isinstance(x, float) or isinstance(y, float):
-        if x is None or y is None:
-            return [] if x is y else [f"{path}: {x} != {y}"]
-        gap = abs(x - y)
-        worst.append(gap / max(abs(x), abs(y), 1e-300))
-        return [] if gap <= REL_TOL * max(abs(x), abs(y)) + ABS_TOL else [f"{path}: {x} != {y}"]
-    return [] if x == y else [f"{path}: {x!r} != {y!r}"]
+def _close(x: Any, y: Any, what: str, worst: list[float]) -> list[str]:
+    """``what`` when the two numbers differ beyond the tolerance (None and NaN match)."""
+    if x is None or y is None or x != x or y != y:
+        same = (x is None or x != x) and (y is None or y != y)
+        return [] if same else [f"{what}: {x} != {y}"]
+    if isinstance(x, int) and isinstance(y, int):
+        return [] if x == y else [f"{what}: {x} != {y}"]
+    gap = abs(x - y)
+    worst.append(gap / max(abs(x), abs(y), 1e-300))
+    return [] if gap <= REL_TOL * max(abs(x), abs(y)) + ABS_TOL else [f"{what}: {x} != {y}"]
 
 
-def scorecard_of(moments: Path, spec: Path) -> dict[str, Any]:
-    """A contender's moments through the tool's own statistics, as scorecard.json content."""
-    import pyarrow as pa
+def _moments(row: dict[str, Any], metric: str) -> Any:
+    from metricforge.stats import Moments
 
-    from metricforge.provenance import make_stamp
-    from metricforge.report.scorecard import build
-    from metricforge.runner import reshape
-    from metricforge.spec import load_plan
-
-    plan = load_plan(spec)
-    rows = json.loads(moments.read_text(encoding="utf-8"))["moments"]
-    data = reshape(plan, make_stamp(plan, "-", "-", "-"), [], pa.Table.from_pylist(rows))
-    card: dict[str, Any] = json.loads(json.dumps(build(data).as_json(), default=str))
-    return card
+    n = int(row[f"{metric}__n"])
+    if metric in contenders.RATIOS:
+        keys = ("mean_x", "mean_y", "var_x", "var_y", "cov_xy")
+        return Moments(n, *(float(row[f"{metric}__{k}"]) for k in keys))
+    return Moments.of_mean(n, float(row[f"{metric}__mean_x"]), float(row[f"{metric}__var_x"]))
 
 
-def agreement(work: Path, spec: Path, names: list[str]) -> tuple[list[str], float]:
+def compare_contender(
+    tool: dict[str, Any], rows: list[dict[str, Any]]
+) -> list[tuple[str, Any, Any]]:
+    """(what, tool's figure, contender's figure) for every figure both can state: per-variant
+    counts, and per metric and variant the values, effect, CI bounds and p-value (the last
+    ones where the tool used the Welch or delta method of ``metricforge.stats.compare``)."""
+    from metricforge.stats import compare
+
+    pairs: list[tuple[str, Any, Any]] = []
+    clean = {r["variant"]: r for r in rows if not r["is_bot"] and not r["contaminated"]}
+    for v in tool["variants"]:
+        mine = [r for r in rows if r["variant"] == v["variant"]]
+        found = {
+            "units": clean[v["variant"]]["n_units"],
+            "events": clean[v["variant"]]["n_events"],
+            "bot_units": sum(r["n_units"] for r in mine if r["is_bot"]),
+            "bot_events": sum(r["n_events"] for r in mine if r["is_bot"]),
+        }
+        pairs += [(f"{v['variant']}.{k}", v[k], n) for k, n in found.items()]
+    for row in tool["metrics"]:
+        name = row["metric"]
+        if name not in contenders.METRICS:
+            continue
+        treatment = _moments(clean[row["variant"]], name)
+        control = _moments(clean[row["control"]], name)
+        effect = compare(treatment, control, alpha=row["alpha"])
+        fields = ["value", "control_value", "abs_effect"]
+        if row.get("method") == effect.method:
+            fields += ["abs_ci_low", "abs_ci_high", "rel_effect", "rel_ci_low", "rel_ci_high"]
+            fields += ["p_value"]
+        where = f"{name}[{row['variant']}]"
+        pairs += [(f"{where}.n_units", row["n_units"], treatment.n)]
+        pairs += [(f"{where}.n_units_control", row["n_units_control"], control.n)]
+        pairs += [(f"{where}.{f}", row[f], getattr(effect, f)) for f in fields]
+    return pairs
+
+
+def agreement(work: Path, names: list[str]) -> tuple[list[str], float]:
     tool = json.loads((work / "a" / "scorecard.json").read_text(encoding="utf-8"))
     problems: list[str] = []
     worst: list[float] = [0.0]
     for name in names:
         if name in ("b", "c", "d"):
-            card = scorecard_of(work / f"{name}.json", spec)
-            problems += [f"{name}: {d}" for d in _close(tool, card, "scorecard", worst)]
+            rows = json.loads((work / f"{name}.json").read_text(encoding="utf-8"))["moments"]
+            for what, x, y in compare_contender(tool, rows):
+                problems += [f"{name}: {d}" for d in _close(x, y, what, worst)]
     return problems, max(worst)
 
 
@@ -289,7 +307,7 @@ def main(argv: list[str] | None = None) -> None:
                     f" {peak / 1024:8.0f} MB",
                     flush=True,
                 )
-        problems, worst = agreement(work, spec, names)
+        problems, worst = agreement(work, names)
         identical = len(cards["a"] | cards["a0"]) == 1 if "a0" in names else len(cards["a"]) == 1
         figures = report(runs, data)
         print(
