@@ -74,11 +74,18 @@ def run(
     timeout: Annotated[
         float, typer.Option("--timeout", min=0.001, help="Stop the queries after SECONDS.")
     ] = 3600.0,
+    memory_limit: Annotated[
+        str | None,
+        typer.Option(
+            help="Engine memory limit (default 3.5GB; spills beyond it); 'none': 80% of RAM."
+        ),
+    ] = None,
 ) -> None:
     """Compute the scorecard of one experiment and write it to OUT, all or nothing."""
     from metricforge import history
     from metricforge.engines.duckdb import DuckDBEngine
     from metricforge.manifest import hash_contents
+    from metricforge.progress import terminal_display
     from metricforge.report.files import prepare_output, write_outputs
     from metricforge.report.scorecard import build
     from metricforge.report.terminal import render
@@ -88,7 +95,13 @@ def run(
     def action() -> bool:
         plan = load_plan(pipeline, bot_filter=bot_filter)
         prepare_output(out, plan)
-        data = execute(plan, DuckDBEngine(threads=threads, timeout_s=timeout))
+        engine = DuckDBEngine(
+            threads=threads,
+            memory_limit=memory_limit,
+            timeout_s=timeout,
+            progress=terminal_display(),
+        )
+        data = execute(plan, engine)
         if hash_inputs is InputHashes.full:
             hash_contents(data)
         card = build(data)

@@ -15,6 +15,7 @@ from metricforge.compile.query import compile_plan, result_columns
 from metricforge.engines.base import Engine, EngineInputs
 from metricforge.errors import InputDataError
 from metricforge.inputs import InputFile, check_columns, fingerprint, inspect, parquet_files
+from metricforge.partitions import event_window, exposure_window, prune
 from metricforge.provenance import Stamp, make_stamp
 from metricforge.quality import summarise
 from metricforge.schema import EVENT_COLUMNS, EXPOSURE_COLUMNS
@@ -71,8 +72,12 @@ def needed_event_columns(plan: Plan) -> tuple[str, ...]:
 
 def gather_inputs(plan: Plan) -> tuple[EngineInputs, list[InputFile]]:
     base = plan.spec.path.parent
-    event_paths = parquet_files(plan.spec.events_path)
-    exposure_paths = parquet_files(plan.spec.exposures_path)
+    # only the date partitions that can hold rows of the analysis window (partitions.py)
+    events_path, exposures_path = plan.spec.events_path, plan.spec.exposures_path
+    event_paths = prune(parquet_files(events_path), *event_window(plan), folder=events_path)
+    exposure_paths = prune(
+        parquet_files(exposures_path), *exposure_window(plan), folder=exposures_path
+    )
     events = [inspect(p, base) for p in event_paths]
     exposures = [inspect(p, base) for p in exposure_paths]
     cols = needed_event_columns(plan)

@@ -108,7 +108,11 @@ class _Builder:
     def __init__(self, plan: Plan, dialect: str) -> None:
         self.plan = plan
         self.spec = plan.spec
-        self.ordered = dialect == "duckdb"  # ordered aggregates make the result bit-stable
+        self.dialect = dialect
+        # Aggregates ordered by unit where the engine's float sums depend on row order: in
+        # DuckDB inside the unit query (stitching) and in result queries that do not read
+        # unit_rows straight (joins, CTEs); `moments` relies on the engine's unit order.
+        self.ordered = dialect == "duckdb"
 
     # -- stage 1 -------------------------------------------------------------------------
     def first_exposure(self) -> exp.Select:
@@ -188,10 +192,7 @@ class _Builder:
         )
         select = exp.select(
             _col("unit", f),
-            _col("variant", f),
-            _col("n_variants", f),
-            _col("first_ts", f),
-            _col(DUPLICATE_EXPOSURES, f),
+            *self._carried(f),
             exp.alias_(_col("session_id", e), "session"),
             exp.alias_(n_events, "n_events"),
         )
@@ -211,25 +212,26 @@ class _Builder:
             flag = self._rule_flag(rule, e)
             if flag is not None:
                 flag = _and(flag, in_window.copy() if in_window is not None else None)
-                select = select.select(
-                    exp.alias_(exp.Max(this=_case(flag, _lit(1), _lit(0))), f"bot_rule_{i}")
-                )
+                select = select.select(exp.alias_(exp.LogicalOr(this=flag), f"bot_rule_{i}"))
         for metric in self.plan.metrics:
             select = select.select(*self._session_parts(metric, e, "", in_window))
             for period, cond in periods:
                 select = select.select(*self._session_parts(metric, e, period, cond))
-        keys = [
-            _col("unit", f),
-            _col("variant", f),
-            _col("n_variants", f),
-            _col("first_ts", f),
-            _col(DUPLICATE_EXPOSURES, f),
-        ]
         return (
             select.from_(exp.alias_(exp.to_table("first_exposure"), f, table=True))
             .join(exp.alias_(exp.to_table("events"), e, table=True), on=join_on, join_type="left")
-            .group_by(*keys, _col("session_id", e))
+            .group_by(_col("unit", f), _col("session_id", e))
         )
+
+    @staticmethod
+    def _carried(table: str | None = None) -> list[exp.Expr]:
+        """A unit's exposure facts (variant, variant count, first exposure, repeated exposure
+        rows), carried through a grouping by unit: they depend on the unit alone, so they are
+        not grouping keys (fewer keys to hash)."""
+        return [
+            exp.alias_(exp.AnyValue(this=_col(name, table)), name)
+            for name in ("variant", "n_variants", "first_ts", DUPLICATE_EXPOSURES)
+        ]
 
     def _periods(self, e: str, f: str) -> list[tuple[str, exp.Expr]]:
         """The periods before the first exposure: (column suffix, condition on an event)."""
@@ -248,7 +250,7 @@ class _Builder:
     def _rule_flag(self, rule: BotRule, e: str) -> exp.Expr | None:
         if rule.kind is RuleKind.USER_AGENT:
             ua = exp.Lower(this=_col("user_agent", e))
-            hits = [exp.StrPosition(this=ua, substr=_lit(t)) > _lit(0) for t in rule.tokens]
+            hits = [exp.Contains(this=ua.copy(), expression=_lit(t)) for t in rule.tokens]
             return exp.or_(*hits)
         if rule.kind is RuleKind.DENY_IP:
             return _col("ip_hash", e).isin(*[_lit(t) for t in rule.tokens])
@@ -346,10 +348,7 @@ class _Builder:
     def units(self) -> exp.Select:
         select = exp.select(
             _col("unit"),
-            _col("variant"),
-            _col("n_variants"),
-            _col("first_ts"),
-            _col(DUPLICATE_EXPOSURES),
+            *self._carried(),
             exp.alias_(exp.cast(exp.Sum(this=_col("n_events")), BIGINT), "n_events"),
             exp.alias_(exp.Max(this=_col("n_events")), "max_session_events"),
             exp.alias_(exp.Count(this=_col("session")), "n_sessions"),
@@ -367,7 +366,7 @@ class _Builder:
         for i, rule in enumerate(self.plan.bot_filter.rules):
             if rule.kind in (RuleKind.USER_AGENT, RuleKind.DENY_IP):
                 select = select.select(
-                    exp.alias_(exp.Max(this=_col(f"bot_rule_{i}")), f"bot_rule_{i}")
+                    exp.alias_(exp.LogicalOr(this=_col(f"bot_rule_{i}")), f"bot_rule_{i}")
                 )
         for column in unit_columns(self.plan):
             select = select.select(exp.alias_(exp.cast(exp.Sum(this=_col(column)), BIGINT), column))
@@ -375,14 +374,7 @@ class _Builder:
             select = select.select(*self._unit_parts(metric, "", "n_events" if pre else None))
             for period in periods:
                 select = select.select(*self._unit_parts(metric, period, f"n_{period}_events"))
-        keys = [
-            _col("unit"),
-            _col("variant"),
-            _col("n_variants"),
-            _col("first_ts"),
-            _col(DUPLICATE_EXPOSURES),
-        ]
-        return select.from_("sessions").group_by(*keys)
+        return select.from_("sessions").group_by(_col("unit"))
 
     def _unit_parts(self, metric: MetricDef, period: str, active: str | None) -> list[exp.Expr]:
         """A metric's per-unit columns for one period; ``active`` names the session column
@@ -464,7 +456,8 @@ class _Builder:
         flags: list[exp.Expr] = []
         for i, rule in enumerate(self.plan.bot_filter.rules):
             if rule.kind in (RuleKind.USER_AGENT, RuleKind.DENY_IP):
-                flags.append(_col(f"bot_rule_{i}").eq(_lit(1)))
+                # NULL when the unit has no event in its window (or no user agent)
+                flags.append(exp.Coalesce(this=_col(f"bot_rule_{i}"), expressions=[exp.false()]))
             elif rule.kind is RuleKind.SESSION_EVENTS:
                 flags.append(_col("max_session_events") > _lit(rule.max_events))
             elif rule.kind is RuleKind.DENY_UNIT and stitched:  # decided per cookie, merged
@@ -509,9 +502,12 @@ class _Builder:
 
     # -- stage 5 -------------------------------------------------------------------------
     def _agg(self, cls: type[exp.Func], col: str | exp.Expr, other: str | None = None) -> exp.Expr:
+        # No ORDER BY inside the moments' aggregates: engines feed the result queries the
+        # units in one fixed order (DuckDB: unit_rows read back sorted by unit, queried on
+        # one thread), so runs are bit-identical without a sort per aggregate.
         this: exp.Expr = _col(col) if isinstance(col, str) else col
         second = _col(other) if other is not None else None
-        return aggregate(cls, this, second, ordered=self.ordered)
+        return aggregate(cls, this, second, ordered=False)
 
     def moments(self) -> exp.Select:
         select = exp.select(

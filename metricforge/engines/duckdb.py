@@ -7,10 +7,14 @@ the input files readable (``allowed_paths``; ``allowed_directories`` holds only 
 temporary folder: DuckDB lets both lists be written as well as read, so no input folder is
 on them), time zone UTC. Only the statements that ``engines/guard.py`` checked run on it,
 under a timeout watchdog.
+
+The unit query runs on every thread and stores ``unit_rows``; the result queries then run
+over it in unit order on one thread (``unit_order.py``), so runs are bit-identical.
 """
 
 from __future__ import annotations
 
+import re
 import tempfile
 from pathlib import Path
 
@@ -21,11 +25,14 @@ import sqlglot.expressions as exp
 from metricforge.compile.query import CompiledRun
 from metricforge.engines.base import EngineInputs
 from metricforge.engines.guard import checked_statements
+from metricforge.engines.unit_order import results_in_unit_order
 from metricforge.engines.watchdog import DEFAULT_TIMEOUT_S, Watchdog
 from metricforge.errors import EngineError
 from metricforge.inputs import find_unreadable
+from metricforge.progress import DisplayFactory, watch
 
-DEFAULT_MEMORY_LIMIT = "4GB"
+DEFAULT_MEMORY_LIMIT = "3.5GB"  # beyond it DuckDB spills; the process stays under 4 GB
+_MEMORY = re.compile(r"\d+(\.\d+)?\s*([KMGT]i?B|B)", re.IGNORECASE)
 _STATEMENT_TYPES = {"unit_rows": "CREATE"}
 # Errors of the data's values or of the query, not of reading a file: no need to look
 # for a broken input (which reads every file).
@@ -36,6 +43,18 @@ _NOT_A_FILE_PROBLEM = (
     duckdb.InterruptException,
     duckdb.OutOfMemoryException,
 )
+
+
+def checked_memory_limit(text: str | None) -> str:
+    """A checked memory limit: e.g. 4GB or 512MiB; 'none' is DuckDB's default (80% of RAM)."""
+    if text is None:
+        return DEFAULT_MEMORY_LIMIT
+    if text.strip().lower() == "none" or _MEMORY.fullmatch(text.strip()):
+        return text.strip()
+    raise EngineError(
+        f"memory limit '{text}' is not a size such as 4GB or 512MiB, or 'none'",
+        key="--memory-limit",
+    )
 
 
 def _set(name: str, value: exp.Expr) -> str:
@@ -49,8 +68,10 @@ def hardened_connection(
     *,
     memory_limit: str = DEFAULT_MEMORY_LIMIT,
     threads: int | None = None,
+    progress: bool = False,
 ) -> duckdb.DuckDBPyConnection:
-    """A connection that can read only ``files`` and whose settings are locked."""
+    """A connection that can read only ``files`` and whose settings are locked; with
+    ``progress``, DuckDB tracks its progress figure (it prints no bar of its own)."""
     config: dict[str, str | bool | int | float | list[str]] = {
         "autoinstall_known_extensions": False,
         "autoload_known_extensions": False,
@@ -68,13 +89,19 @@ def hardened_connection(
     con = duckdb.connect(":memory:", config=config)
     paths = sorted({str(p) for f in files for p in (f.absolute(), f.resolve())})
     spill = str(temp_dir.resolve()) + "/"
-    for name, value in (
+    settings: list[tuple[str, exp.Expr]] = [
         ("TimeZone", exp.Literal.string("UTC")),
         ("allowed_paths", exp.Array(expressions=[exp.Literal.string(p) for p in paths])),
         ("allowed_directories", exp.Array(expressions=[exp.Literal.string(spill)])),
         ("enable_external_access", exp.false()),
-        ("lock_configuration", exp.true()),  # last: nothing can be changed after this
-    ):
+    ]
+    if progress:
+        settings += [
+            ("enable_progress_bar", exp.true()),
+            ("enable_progress_bar_print", exp.false()),
+        ]
+    settings.append(("lock_configuration", exp.true()))  # last: nothing can change after it
+    for name, value in settings:
         con.execute(_set(name, value))
     return con
 
@@ -116,14 +143,16 @@ class DuckDBEngine:
         self,
         *,
         threads: int | None = None,
-        memory_limit: str = DEFAULT_MEMORY_LIMIT,
+        memory_limit: str | None = DEFAULT_MEMORY_LIMIT,
         temp_dir: Path | None = None,
         timeout_s: float | None = DEFAULT_TIMEOUT_S,
+        progress: DisplayFactory | None = None,
     ) -> None:
         self.threads = threads
-        self.memory_limit = memory_limit
+        self.memory_limit = checked_memory_limit(memory_limit)
         self.temp_dir = temp_dir
         self.timeout_s = timeout_s
+        self.progress = progress  # draws a bar while unit_rows is built (terminals only)
 
     def version(self) -> str:
         return str(duckdb.__version__)
@@ -139,15 +168,20 @@ class DuckDBEngine:
                     Path(tmp),
                     memory_limit=self.memory_limit,
                     threads=self.threads,
+                    progress=self.progress is not None,
                 )
             except duckdb.Error as err:
                 raise EngineError(f"DuckDB failed to start: {_first_line(err)}") from None
+            running = [con]  # the connection a timeout interrupts: the second one, once open
             try:
-                with Watchdog(con.interrupt, self.timeout_s) as dog:
+                with Watchdog(lambda: running[-1].interrupt(), self.timeout_s) as dog:
                     try:
                         _register_views(con, inputs)
-                        con.execute(store)
-                        tables = {name: _fetch(con.sql(sql)) for name, sql in results}
+                        with watch(con, self.progress):
+                            con.execute(store)
+                        tables = results_in_unit_order(
+                            con, results, memory_limit=self.memory_limit, on_open=running.append
+                        )
                     except duckdb.Error as err:
                         if dog.fired:
                             raise dog.timeout_error() from None
@@ -166,9 +200,3 @@ class DuckDBEngine:
 
 def _first_line(err: BaseException) -> str:
     return (str(err).splitlines() or [type(err).__name__])[0]
-
-
-def _fetch(relation: duckdb.DuckDBPyRelation) -> pa.Table:
-    fetch = getattr(relation, "to_arrow_table", None) or relation.arrow
-    table: pa.Table = fetch()
-    return table

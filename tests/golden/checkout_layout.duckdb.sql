@@ -36,27 +36,23 @@ WITH first_exposure AS (
 ), sessions AS (
   SELECT
     f.unit,
-    f.variant,
-    f.n_variants,
-    f.first_ts,
-    f.dq_duplicate_exposures,
+    ANY_VALUE(f.variant) AS variant,
+    ANY_VALUE(f.n_variants) AS n_variants,
+    ANY_VALUE(f.first_ts) AS first_ts,
+    ANY_VALUE(f.dq_duplicate_exposures) AS dq_duplicate_exposures,
     e.session_id AS session,
     COUNT(CASE WHEN e.ts >= f.first_ts THEN 1 END) AS n_events,
     COUNT(CASE WHEN NOT (
       e.ts >= f.first_ts
     ) THEN 1 END) AS n_pre_events,
-    MAX(
-      CASE
-        WHEN (
-          STRPOS(LOWER(e.user_agent), 'bot') > 0
-          OR STRPOS(LOWER(e.user_agent), 'crawler') > 0
-          OR STRPOS(LOWER(e.user_agent), 'spider') > 0
-          OR STRPOS(LOWER(e.user_agent), 'headless') > 0
-        )
-        AND e.ts >= f.first_ts
-        THEN 1
-        ELSE 0
-      END
+    BOOL_OR(
+      CAST((
+        CONTAINS(LOWER(e.user_agent), 'bot')
+        OR CONTAINS(LOWER(e.user_agent), 'crawler')
+        OR CONTAINS(LOWER(e.user_agent), 'spider')
+        OR CONTAINS(LOWER(e.user_agent), 'headless')
+      )
+      AND e.ts >= f.first_ts AS BOOLEAN)
     ) AS bot_rule_0,
     SUM(
       CASE
@@ -378,23 +374,19 @@ WITH first_exposure AS (
     AND e.ts < CAST('2026-10-13 00:00:00' AS TIMESTAMP)
   GROUP BY
     f.unit,
-    f.variant,
-    f.n_variants,
-    f.first_ts,
-    f.dq_duplicate_exposures,
     e.session_id
 ), units AS (
   SELECT
     unit,
-    variant,
-    n_variants,
-    first_ts,
-    dq_duplicate_exposures,
+    ANY_VALUE(variant) AS variant,
+    ANY_VALUE(n_variants) AS n_variants,
+    ANY_VALUE(first_ts) AS first_ts,
+    ANY_VALUE(dq_duplicate_exposures) AS dq_duplicate_exposures,
     CAST(SUM(n_events) AS BIGINT) AS n_events,
     MAX(n_events) AS max_session_events,
     COUNT(session) AS n_sessions,
     CAST(SUM(n_pre_events) AS BIGINT) AS n_pre_events,
-    MAX(bot_rule_0) AS bot_rule_0,
+    BOOL_OR(CAST(bot_rule_0 AS BOOLEAN)) AS bot_rule_0,
     CAST(SUM(dq_ignored_revenue) AS BIGINT) AS dq_ignored_revenue,
     CAST(SUM(dq_negative_revenue) AS BIGINT) AS dq_negative_revenue,
     CAST(SUM(dq_ignored_page_latency) AS BIGINT) AS dq_ignored_page_latency,
@@ -439,18 +431,14 @@ WITH first_exposure AS (
     CAST(COALESCE(SUM(spre_revenue_winsorised), 0) AS DOUBLE) AS upre_revenue_winsorised
   FROM sessions
   GROUP BY
-    unit,
-    variant,
-    n_variants,
-    first_ts,
-    dq_duplicate_exposures
+    unit
 )
 SELECT
   unit,
   variant,
   n_events,
   (
-    bot_rule_0 = 1 OR max_session_events > 60
+    COALESCE(bot_rule_0, FALSE) OR max_session_events > 60
   ) AS is_bot,
   n_variants > 1 AS contaminated,
   n_variants > 1 AS two_variants,
@@ -553,59 +541,59 @@ SELECT
   COUNT(*) AS n_units,
   CAST(SUM(n_events) AS BIGINT) AS n_events,
   COUNT(x_revenue) AS revenue__n,
-  AVG(x_revenue ORDER BY unit) AS revenue__mean_x,
-  VARIANCE(x_revenue ORDER BY unit) AS revenue__var_x,
+  AVG(x_revenue) AS revenue__mean_x,
+  VARIANCE(x_revenue) AS revenue__var_x,
   COUNT(x_unsubscribes) AS unsubscribes__n,
-  AVG(x_unsubscribes ORDER BY unit) AS unsubscribes__mean_x,
-  VARIANCE(x_unsubscribes ORDER BY unit) AS unsubscribes__var_x,
+  AVG(x_unsubscribes) AS unsubscribes__mean_x,
+  VARIANCE(x_unsubscribes) AS unsubscribes__var_x,
   COUNT(x_page_latency) AS page_latency__n,
-  AVG(x_page_latency ORDER BY unit) AS page_latency__mean_x,
-  VARIANCE(x_page_latency ORDER BY unit) AS page_latency__var_x,
+  AVG(x_page_latency) AS page_latency__mean_x,
+  VARIANCE(x_page_latency) AS page_latency__var_x,
   COUNT(x_page_latency_p95) AS page_latency_p95__n,
-  AVG(x_page_latency_p95 ORDER BY unit) AS page_latency_p95__mean_x,
-  VARIANCE(x_page_latency_p95 ORDER BY unit) AS page_latency_p95__var_x,
+  AVG(x_page_latency_p95) AS page_latency_p95__mean_x,
+  VARIANCE(x_page_latency_p95) AS page_latency_p95__var_x,
   COUNT(x_purchases) AS purchases__n,
-  AVG(x_purchases ORDER BY unit) AS purchases__mean_x,
-  VARIANCE(x_purchases ORDER BY unit) AS purchases__var_x,
+  AVG(x_purchases) AS purchases__mean_x,
+  VARIANCE(x_purchases) AS purchases__var_x,
   COUNT(x_refunds) AS refunds__n,
-  AVG(x_refunds ORDER BY unit) AS refunds__mean_x,
-  VARIANCE(x_refunds ORDER BY unit) AS refunds__var_x,
+  AVG(x_refunds) AS refunds__mean_x,
+  VARIANCE(x_refunds) AS refunds__var_x,
   COUNT(x_buyer_share) AS buyer_share__n,
-  AVG(x_buyer_share ORDER BY unit) AS buyer_share__mean_x,
-  VARIANCE(x_buyer_share ORDER BY unit) AS buyer_share__var_x,
+  AVG(x_buyer_share) AS buyer_share__mean_x,
+  VARIANCE(x_buyer_share) AS buyer_share__var_x,
   SUM(CAST(x_buyer_share AS BIGINT)) AS buyer_share__successes,
   COUNT(x_mobile_purchases) AS mobile_purchases__n,
-  AVG(x_mobile_purchases ORDER BY unit) AS mobile_purchases__mean_x,
-  VARIANCE(x_mobile_purchases ORDER BY unit) AS mobile_purchases__var_x,
+  AVG(x_mobile_purchases) AS mobile_purchases__mean_x,
+  VARIANCE(x_mobile_purchases) AS mobile_purchases__var_x,
   COUNT(x_click_through) AS click_through__n,
-  AVG(x_click_through ORDER BY unit) AS click_through__mean_x,
-  VARIANCE(x_click_through ORDER BY unit) AS click_through__var_x,
-  AVG(y_click_through ORDER BY unit) AS click_through__mean_y,
-  VARIANCE(y_click_through ORDER BY unit) AS click_through__var_y,
-  COVAR_SAMP(x_click_through, y_click_through ORDER BY unit) AS click_through__cov_xy,
+  AVG(x_click_through) AS click_through__mean_x,
+  VARIANCE(x_click_through) AS click_through__var_x,
+  AVG(y_click_through) AS click_through__mean_y,
+  VARIANCE(y_click_through) AS click_through__var_y,
+  COVAR_SAMP(x_click_through, y_click_through) AS click_through__cov_xy,
   COUNT(x_session_success) AS session_success__n,
-  AVG(x_session_success ORDER BY unit) AS session_success__mean_x,
-  VARIANCE(x_session_success ORDER BY unit) AS session_success__var_x,
-  AVG(y_session_success ORDER BY unit) AS session_success__mean_y,
-  VARIANCE(y_session_success ORDER BY unit) AS session_success__var_y,
-  COVAR_SAMP(x_session_success, y_session_success ORDER BY unit) AS session_success__cov_xy,
+  AVG(x_session_success) AS session_success__mean_x,
+  VARIANCE(x_session_success) AS session_success__var_x,
+  AVG(y_session_success) AS session_success__mean_y,
+  VARIANCE(y_session_success) AS session_success__var_y,
+  COVAR_SAMP(x_session_success, y_session_success) AS session_success__cov_xy,
   COUNT(x_net_value) AS net_value__n,
-  AVG(x_net_value ORDER BY unit) AS net_value__mean_x,
-  VARIANCE(x_net_value ORDER BY unit) AS net_value__var_x,
+  AVG(x_net_value) AS net_value__mean_x,
+  VARIANCE(x_net_value) AS net_value__var_x,
   COUNT(x_revenue_winsorised) AS revenue_winsorised__n,
   AVG(
     CASE
       WHEN x_revenue_winsorised > caps.revenue_winsorised__cap
       THEN caps.revenue_winsorised__cap
       ELSE x_revenue_winsorised
-    END ORDER BY unit
+    END
   ) AS revenue_winsorised__mean_x,
   VARIANCE(
     CASE
       WHEN x_revenue_winsorised > caps.revenue_winsorised__cap
       THEN caps.revenue_winsorised__cap
       ELSE x_revenue_winsorised
-    END ORDER BY unit
+    END
   ) AS revenue_winsorised__var_x
 FROM unit_rows
 CROSS JOIN caps

@@ -36,27 +36,23 @@ WITH first_exposure AS (
 ), sessions AS (
   SELECT
     f.unit,
-    f.variant,
-    f.n_variants,
-    f.first_ts,
-    f.dq_duplicate_exposures,
+    ANY_VALUE(f.variant) AS variant,
+    ANY_VALUE(f.n_variants) AS n_variants,
+    ANY_VALUE(f.first_ts) AS first_ts,
+    ANY_VALUE(f.dq_duplicate_exposures) AS dq_duplicate_exposures,
     e.session_id AS session,
     COUNT(CASE WHEN e.ts >= f.first_ts THEN 1 END) AS n_events,
     COUNT(CASE WHEN NOT (
       e.ts >= f.first_ts
     ) THEN 1 END) AS n_pre_events,
-    MAX(
-      CASE
-        WHEN (
-          LOCATE('bot', LOWER(e.user_agent)) > 0
-          OR LOCATE('crawler', LOWER(e.user_agent)) > 0
-          OR LOCATE('spider', LOWER(e.user_agent)) > 0
-          OR LOCATE('headless', LOWER(e.user_agent)) > 0
-        )
-        AND e.ts >= f.first_ts
-        THEN 1
-        ELSE 0
-      END
+    BOOL_OR(
+      (
+        CONTAINS(LOWER(e.user_agent), 'bot')
+        OR CONTAINS(LOWER(e.user_agent), 'crawler')
+        OR CONTAINS(LOWER(e.user_agent), 'spider')
+        OR CONTAINS(LOWER(e.user_agent), 'headless')
+      )
+      AND e.ts >= f.first_ts
     ) AS bot_rule_0,
     SUM(
       CASE
@@ -378,23 +374,19 @@ WITH first_exposure AS (
     AND e.ts < CAST('2026-10-13 00:00:00' AS TIMESTAMP)
   GROUP BY
     f.unit,
-    f.variant,
-    f.n_variants,
-    f.first_ts,
-    f.dq_duplicate_exposures,
     e.session_id
 ), units AS (
   SELECT
     unit,
-    variant,
-    n_variants,
-    first_ts,
-    dq_duplicate_exposures,
+    ANY_VALUE(variant) AS variant,
+    ANY_VALUE(n_variants) AS n_variants,
+    ANY_VALUE(first_ts) AS first_ts,
+    ANY_VALUE(dq_duplicate_exposures) AS dq_duplicate_exposures,
     CAST(SUM(n_events) AS BIGINT) AS n_events,
     MAX(n_events) AS max_session_events,
     COUNT(session) AS n_sessions,
     CAST(SUM(n_pre_events) AS BIGINT) AS n_pre_events,
-    MAX(bot_rule_0) AS bot_rule_0,
+    BOOL_OR(bot_rule_0) AS bot_rule_0,
     CAST(SUM(dq_ignored_revenue) AS BIGINT) AS dq_ignored_revenue,
     CAST(SUM(dq_negative_revenue) AS BIGINT) AS dq_negative_revenue,
     CAST(SUM(dq_ignored_page_latency) AS BIGINT) AS dq_ignored_page_latency,
@@ -439,18 +431,14 @@ WITH first_exposure AS (
     CAST(COALESCE(SUM(spre_revenue_winsorised), 0) AS DOUBLE) AS upre_revenue_winsorised
   FROM sessions
   GROUP BY
-    unit,
-    variant,
-    n_variants,
-    first_ts,
-    dq_duplicate_exposures
+    unit
 )
 SELECT
   unit,
   variant,
   n_events,
   (
-    bot_rule_0 = 1 OR max_session_events > 60
+    COALESCE(bot_rule_0, FALSE) OR max_session_events > 60
   ) AS is_bot,
   n_variants > 1 AS contaminated,
   n_variants > 1 AS two_variants,
