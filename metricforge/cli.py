@@ -11,6 +11,7 @@ from typing import Annotated, TypeVar
 import typer
 from rich.console import Console
 
+from metricforge.engines.choose import EngineName
 from metricforge.errors import MetricforgeError
 
 app = typer.Typer(
@@ -61,9 +62,17 @@ def run(
     strict: Annotated[
         bool, typer.Option("--strict", help=f"Exit with {STRICT_EXIT} when a trust check fails.")
     ] = False,
+    engine: Annotated[EngineName, typer.Option(help="Engine to run on.")] = EngineName.duckdb,
+    spark_master: Annotated[
+        str | None,
+        typer.Option(help="Spark master URL: local[N] (default local[2]), spark://, yarn, sc://."),
+    ] = None,
+    spark_conf: Annotated[
+        list[str] | None, typer.Option(help="A Spark setting KEY=VALUE (repeatable).")
+    ] = None,
 ) -> None:
     """Compute the scorecard of one experiment and write it to OUT, all or nothing."""
-    from metricforge.engines.duckdb import DuckDBEngine
+    from metricforge.engines.choose import open_engine
     from metricforge.report.files import write_outputs
     from metricforge.report.scorecard import build
     from metricforge.report.terminal import render
@@ -72,7 +81,10 @@ def run(
 
     def action() -> bool:
         plan = load_plan(pipeline, bot_filter=bot_filter)
-        data = execute(plan, DuckDBEngine(threads=threads))
+        with open_engine(
+            engine, threads=threads, spark_master=spark_master, spark_settings=spark_conf or ()
+        ) as chosen:
+            data = execute(plan, chosen)
         card = build(data)
         write_outputs(out, data, card)
         render(card, out_console)
