@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import tempfile
+from collections.abc import Sequence
 from pathlib import Path
 
 import duckdb
@@ -10,7 +11,7 @@ import pyarrow as pa
 import sqlglot.expressions as exp
 
 from metricforge.compile.query import CompiledRun
-from metricforge.engines.base import EngineInputs
+from metricforge.engines.base import EngineInputs, check_statements, rendered
 from metricforge.errors import EngineError
 
 DEFAULT_MEMORY_LIMIT = "4GB"
@@ -72,19 +73,20 @@ class DuckDBEngine:
         return con
 
     def run(self, compiled: CompiledRun, inputs: EngineInputs) -> dict[str, pa.Table]:
-        queries = [compiled.unit_rows, *(q for _, q in compiled.results)]
-        if not all(isinstance(q, exp.Select) for q in queries):
-            raise EngineError("refusing to run anything but SELECT queries")
-        store = compiled.materialise(self.dialect).sql(dialect=self.dialect)
+        return self.run_statements(rendered(compiled, self.dialect), inputs)
+
+    def run_statements(
+        self, statements: Sequence[tuple[str, str]], inputs: EngineInputs
+    ) -> dict[str, pa.Table]:
+        """Run DuckDB SQL text: first the statement storing ``unit_rows``, then named
+        SELECTs over it; returns each SELECT's result by name."""
+        check_statements(statements, self.dialect)
         with tempfile.TemporaryDirectory(prefix="metricforge-spill-", dir=self.temp_dir) as tmp:
             try:
                 con = self._connect(inputs, Path(tmp))
                 try:
-                    con.execute(store)
-                    return {
-                        name: _fetch(con.sql(query.sql(dialect=self.dialect)))
-                        for name, query in compiled.results
-                    }
+                    con.execute(statements[0][1])
+                    return {name: _fetch(con.sql(text)) for name, text in statements[1:]}
                 finally:
                     con.close()
             except duckdb.Error as err:

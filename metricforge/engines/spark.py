@@ -14,16 +14,14 @@ import os
 import shutil
 import warnings
 from collections.abc import Iterator, Mapping, Sequence
-from contextlib import contextmanager
+from contextlib import contextmanager, suppress
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import pyarrow as pa
-import sqlglot
-import sqlglot.expressions as exp
 
 from metricforge.compile.query import UNIT_TABLE, CompiledRun
-from metricforge.engines.base import EngineInputs
+from metricforge.engines.base import EngineInputs, check_statements, rendered
 from metricforge.errors import EngineError
 from metricforge.schema import EXPOSURE_COLUMNS
 
@@ -92,40 +90,17 @@ def _normalise(table: pa.Table) -> pa.Table:
     return table.cast(pa.schema(fields))
 
 
-def _checked(statements: Sequence[tuple[str, str]]) -> None:
-    """The first statement caches a SELECT as ``unit_rows``; every other one is a SELECT."""
-    if not statements:
-        raise EngineError("nothing to run")
-    for i, (name, text) in enumerate(statements):
-        try:
-            trees = sqlglot.parse(text, read="spark")
-        except sqlglot.errors.ParseError as err:
-            raise EngineError(f"cannot parse statement '{name}': {_first_line(err)}") from None
-        tree = trees[0] if len(trees) == 1 else None
-        if i == 0:
-            ok = (
-                isinstance(tree, exp.Cache)
-                and tree.this.name == UNIT_TABLE
-                and isinstance(tree.expression, exp.Select)
-            )
-        else:
-            ok = isinstance(tree, exp.Select)
-        if not ok:
-            raise EngineError(f"refusing to run statement '{name}': not the expected query")
-
-
 class SparkEngine:
     """Runs compiled runs on Spark: ``local[N]``, ``spark://``, ``yarn`` or ``sc://`` (Connect)."""
 
     name = "spark"
     dialect = "spark"
 
-    def __init__(
-        self, master: str = DEFAULT_MASTER, conf: Mapping[str, str] | None = None
-    ) -> None:
+    def __init__(self, master: str = DEFAULT_MASTER, conf: Mapping[str, str] | None = None) -> None:
         self.master = master
         self.conf = dict(conf or {})
         self._spark: SparkSession | None = None
+        self._owned = False  # an already running session (a notebook's) is left running
 
     # -- session ----------------------------------------------------------------------------
     def session(self) -> SparkSession:
@@ -160,6 +135,7 @@ class SparkEngine:
         for key, value in self.conf.items():
             builder = builder.config(key, value)
         try:
+            self._owned = remote or SparkSession.getActiveSession() is None
             with _quiet():
                 spark: SparkSession = builder.getOrCreate()
             for key, value in SESSION_CONF.items():
@@ -176,9 +152,10 @@ class SparkEngine:
         return str(self.session().version)
 
     def close(self) -> None:
-        if self._spark is not None:
+        """Stop the session if this engine started it."""
+        if self._spark is not None and self._owned:
             self._spark.stop()
-            self._spark = None
+        self._spark = None
 
     # -- inputs -----------------------------------------------------------------------------
     def _register(self, spark: SparkSession, inputs: EngineInputs) -> None:
@@ -196,9 +173,7 @@ class SparkEngine:
             )
 
         read(inputs.events, inputs.event_columns, inputs.hive).createOrReplaceTempView("events")
-        read(inputs.exposures, tuple(EXPOSURE_COLUMNS), False).createOrReplaceTempView(
-            "exposures"
-        )
+        read(inputs.exposures, tuple(EXPOSURE_COLUMNS), False).createOrReplaceTempView("exposures")
 
     def _drop(self, spark: SparkSession) -> None:
         for view in (UNIT_TABLE, *VIEWS):
@@ -206,34 +181,25 @@ class SparkEngine:
 
     # -- running ----------------------------------------------------------------------------
     def run(self, compiled: CompiledRun, inputs: EngineInputs) -> dict[str, pa.Table]:
-        queries = [compiled.unit_rows, *(q for _, q in compiled.results)]
-        if not all(isinstance(q, exp.Select) for q in queries):
-            raise EngineError("refusing to run anything but SELECT queries")
-        statements = [
-            (name, tree.sql(dialect=self.dialect))
-            for name, tree in compiled.statements(self.dialect)
-        ]
-        return self.run_statements(statements, inputs)
+        return self.run_statements(rendered(compiled, self.dialect), inputs)
 
     def run_statements(
         self, statements: Sequence[tuple[str, str]], inputs: EngineInputs
     ) -> dict[str, pa.Table]:
         """Run Spark SQL text: first the ``CACHE TABLE unit_rows AS SELECT ...``, then named
         SELECTs over it; returns each SELECT's result by name."""
-        _checked(statements)
+        check_statements(statements, self.dialect)
         spark = self.session()
         try:
             self._drop(spark)
             self._register(spark, inputs)
             spark.sql(statements[0][1])  # CACHE TABLE ... AS is eager
             with _quiet():
-                return {name: _normalise(spark.sql(text).toArrow()) for name, text in statements[1:]}
+                return {name: _normalise(spark.sql(q).toArrow()) for name, q in statements[1:]}
         except EngineError:
             raise
         except Exception as err:  # noqa: BLE001 - py4j, gRPC and Spark errors alike
             raise EngineError(f"Spark failed: {_first_line(err)}") from None
         finally:
-            try:
+            with suppress(Exception):  # a stopped session has nothing to drop
                 self._drop(spark)
-            except Exception:  # noqa: BLE001, S110 - a stopped session has nothing to drop
-                pass

@@ -1,0 +1,48 @@
+"""Comparing what two engines returned: counts exactly, floating values to a relative bound."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from typing import Any
+
+import pyarrow as pa
+
+# Spark sums floats in another order than DuckDB: values agree to this relative bound.
+SPARK_REL = 1e-12
+
+
+def tolerance(engine_name: str) -> float:
+    """DuckDB against itself: bit-identical (its aggregates are ordered); Spark: SPARK_REL."""
+    return 0.0 if engine_name == "duckdb" else SPARK_REL
+
+
+def same_value(got: Any, want: Any, rel: float) -> bool:
+    if isinstance(want, float) or isinstance(got, float):
+        if got is None or want is None:
+            return got is None and want is None
+        if math.isnan(want) or math.isnan(got):
+            return math.isnan(want) and math.isnan(got)
+        return bool(got == want) if rel == 0 else math.isclose(got, want, rel_tol=rel, abs_tol=0)
+    return bool(got == want)  # counts, flags, names: exactly
+
+
+def assert_same_rows(got: list[dict[str, Any]], want: list[dict[str, Any]], rel: float) -> None:
+    assert len(got) == len(want)
+    for i, (g, w) in enumerate(zip(got, want, strict=True)):
+        assert g.keys() == w.keys(), i
+        for key, value in w.items():
+            assert same_value(g[key], value, rel), (i, key, g[key], value)
+
+
+def assert_same_tables(
+    got: Mapping[str, pa.Table], want: Mapping[str, pa.Table], rel: float
+) -> None:
+    """Same result names, column names and types (nullability aside), rows and values."""
+    assert sorted(got) == sorted(want)
+    for name, table in want.items():
+        other = got[name]
+        assert other.column_names == table.column_names, name
+        types = [(f.name, f.type) for f in other.schema]
+        assert types == [(f.name, f.type) for f in table.schema], name
+        assert_same_rows(other.to_pylist(), table.to_pylist(), rel)

@@ -1,0 +1,118 @@
+"""One suite for both engines: every demo pipeline gives the same numbers on each.
+
+DuckDB is the reference. On DuckDB itself a second run must be bit-identical (its final
+aggregates are ordered by unit); on Spark, which cannot order them, counts must match
+exactly and floating values to 1e-12 relative (tests/parity.py). Every pipeline under
+pipelines/ is run, so a new construct in the compiler is checked on both engines.
+"""
+
+from __future__ import annotations
+
+import functools
+import json
+from pathlib import Path
+
+import pyarrow as pa
+import pytest
+
+from metricforge.compile.query import CompiledRun
+from metricforge.engines.base import Engine, EngineInputs
+from metricforge.engines.duckdb import DuckDBEngine
+from metricforge.report.scorecard import Scorecard, build
+from metricforge.runner import execute
+from metricforge.spec import load_plan
+from metricforge.spec.metrics import load_library
+from tests.conftest import PIPELINES, ROOT
+from tests.parity import assert_same_rows, assert_same_tables, tolerance
+
+PIPELINE_FILES = sorted(PIPELINES.glob("*.toml"))
+# Every metric of the shared library at once, with a pre-period: a metric kind added to
+# metric_defs/ is run on both engines without a new test.
+LIBRARY_SPEC = """\
+[experiment]
+name = "checkout_layout"
+unit = "cookie_id"
+control = "control"
+variants = {{ control = 50, treatment = 50 }}
+start = 2026-09-15T00:00:00Z
+end = 2026-09-29T00:00:00Z
+window_days = 14
+pre_period_days = 7
+alpha = 0.05
+bot_filter = "bots@2"
+
+[data]
+events = "{root}/sample_data/events"
+exposures = "{root}/sample_data/exposures.parquet"
+definitions = ["{root}/metric_defs"]
+
+[metrics]
+decision = "revenue"
+guardrails = []
+diagnostics = {others}
+"""
+
+
+class Recording:
+    """An engine that keeps the tables it returned, so a test sees what the runner saw."""
+
+    def __init__(self, engine: Engine) -> None:
+        self.engine = engine
+        self.name = engine.name
+        self.dialect = engine.dialect
+        self.tables: dict[str, pa.Table] = {}
+
+    def version(self) -> str:
+        return self.engine.version()
+
+    def run(self, compiled: CompiledRun, inputs: EngineInputs) -> dict[str, pa.Table]:
+        self.tables = self.engine.run(compiled, inputs)
+        return self.tables
+
+
+def scorecard(path: Path, engine: Engine) -> tuple[dict[str, pa.Table], Scorecard]:
+    recording = Recording(engine)
+    card = build(execute(load_plan(path), recording))
+    return recording.tables, card
+
+
+def library_pipeline(folder: Path) -> Path:
+    names = sorted(load_library((ROOT / "metric_defs",)))
+    others = json.dumps([n for n in names if n != "revenue"])
+    spec = folder / "library.toml"
+    spec.write_text(LIBRARY_SPEC.format(root=ROOT.as_posix(), others=others), encoding="utf-8")
+    return spec
+
+
+@functools.cache
+def reference(path: Path) -> tuple[dict[str, pa.Table], Scorecard]:
+    return scorecard(path, DuckDBEngine())
+
+
+def test_there_are_demo_pipelines() -> None:
+    assert len(PIPELINE_FILES) >= 4
+
+
+@pytest.mark.parametrize("pipeline", PIPELINE_FILES, ids=lambda p: p.stem)
+def test_demo_pipeline_gives_the_reference_numbers(engine: Engine, pipeline: Path) -> None:
+    want_tables, want = reference(pipeline)
+    tables, card = scorecard(pipeline, engine)
+    rel = tolerance(engine.name)
+    assert_same_tables(tables, want_tables, rel)  # the sufficient statistics
+    assert_same_rows(card.rows, want.rows, rel)  # effects, intervals, p-values
+    assert_same_rows(card.variants, want.variants, rel)  # units, bots, events per variant
+    assert_same_rows(card.trust["checks"], want.trust["checks"], rel)
+    assert card.stamp["engine"] == engine.name
+
+
+def test_every_library_metric_with_a_pre_period_gives_the_reference_numbers(
+    engine: Engine, tmp_path_factory: pytest.TempPathFactory
+) -> None:
+    spec = library_pipeline(tmp_path_factory.mktemp("library"))
+    plan = load_plan(spec)
+    assert plan.pre_period_days == 7 and len(plan.reported) == len(plan.metrics)
+    want_tables, want = scorecard(spec, DuckDBEngine())
+    tables, card = scorecard(spec, engine)
+    rel = tolerance(engine.name)
+    assert_same_tables(tables, want_tables, rel)
+    assert_same_rows(card.rows, want.rows, rel)
