@@ -11,7 +11,9 @@ result query, and returns Arrow tables typed as DuckDB returns them.
 from __future__ import annotations
 
 import os
+import re
 import shutil
+import socket
 import warnings
 from collections.abc import Iterator, Mapping, Sequence
 from contextlib import contextmanager, suppress
@@ -29,10 +31,16 @@ if TYPE_CHECKING:
     from pyspark.sql import DataFrame, SparkSession
 
 DEFAULT_MASTER = "local[2]"
+CONNECT_PORT = 15002  # Spark Connect's default
+CONNECT_TIMEOUT_S = 10.0
 INSTALL_HINT = "pip install 'metricforge[spark]'"
 VIEWS = ("events", "exposures")
-# Settings of every session: naive timestamps mean UTC, exactly as in DuckDB.
-SESSION_CONF: Mapping[str, str] = {"spark.sql.session.timeZone": "UTC"}
+# Settings of every session: naive timestamps mean UTC, exactly as in DuckDB, and TIMESTAMP
+# (the type of the compiled literals and of the views' `ts`) is Spark's instant type.
+SESSION_CONF: Mapping[str, str] = {
+    "spark.sql.session.timeZone": "UTC",
+    "spark.sql.timestampType": "TIMESTAMP_LTZ",
+}
 # Settings of a session this process starts itself (not of a Spark Connect server's).
 LAUNCH_CONF: Mapping[str, str] = {
     "spark.ui.enabled": "false",
@@ -46,6 +54,39 @@ LOG4J = Path(__file__).with_name("spark-log4j2.properties")
 
 def is_connect(master: str) -> bool:
     return master.startswith("sc://")
+
+
+_MASTER = re.compile(
+    r"(local(\[[0-9*]+(,[0-9]+)?\])?|local-cluster\[.+\]|yarn|(spark|k8s|sc)://.+)"
+)
+
+
+def check_master(master: str) -> None:
+    if not _MASTER.fullmatch(master):
+        raise EngineError(
+            f"--spark-master '{master}': expected local[N], spark://host:port, yarn,"
+            " k8s://https://host:port or sc://host:port"
+        )
+
+
+def connect_address(master: str) -> tuple[str, int]:
+    """Host and port of a Spark Connect URL ``sc://host[:port][/;param=value...]``."""
+    netloc = master[len("sc://") :].split("/", 1)[0].split(";", 1)[0]
+    host, _, port = netloc.rpartition(":") if ":" in netloc else (netloc, "", "")
+    if not host or (port and not port.isdigit()):
+        raise EngineError(f"--spark-master '{master}': expected sc://host:port")
+    return host.strip("[]"), int(port) if port else CONNECT_PORT
+
+
+def _reachable(master: str) -> None:
+    """Fail in one line at once, instead of after the client's minutes of retries."""
+    host, port = connect_address(master)
+    try:
+        socket.create_connection((host, port), timeout=CONNECT_TIMEOUT_S).close()
+    except OSError as err:
+        raise EngineError(
+            f"cannot reach the Spark Connect server at {host}:{port}: {err.strerror or err}"
+        ) from None
 
 
 def is_local(master: str) -> bool:
@@ -114,12 +155,15 @@ class SparkEngine:
             from pyspark.sql import SparkSession
         except ImportError:
             raise EngineError(f"the Spark engine needs pyspark: {INSTALL_HINT}") from None
+        check_master(self.master)
         remote = is_connect(self.master)
         if not remote and not (os.environ.get("JAVA_HOME") or shutil.which("java")):
             raise EngineError(
                 "the Spark engine needs a Java 17+ runtime: none found on PATH or in JAVA_HOME"
                 " (e.g. apt-get install openjdk-17-jre-headless)"
             )
+        if remote:
+            _reachable(self.master)
         builder: Any = SparkSession.builder.appName("metricforge")
         if remote:
             builder = builder.remote(self.master)
