@@ -16,7 +16,7 @@ import pyarrow as pa
 import pytest
 
 from metricforge.compile.query import CompiledRun
-from metricforge.engines.base import Engine, EngineInputs
+from metricforge.engines.base import Engine, EngineInputs, arrow_result
 from metricforge.engines.duckdb import DuckDBEngine
 from metricforge.report.scorecard import Scorecard, build
 from metricforge.runner import execute
@@ -116,3 +116,23 @@ def test_every_library_metric_with_a_pre_period_gives_the_reference_numbers(
     rel = tolerance(engine.name)
     assert_same_tables(tables, want_tables, rel)
     assert_same_rows(card.rows, want.rows, rel)
+
+
+def test_result_tables_have_one_arrow_typing() -> None:
+    """DuckDB's integer SUM is a 128-bit integer, Spark's a BIGINT: both come back int64;
+    real decimals stay decimals; a sum past int64 fails loudly instead of wrapping."""
+    table = pa.table(
+        {
+            "n": pa.array([3, None], pa.decimal128(38, 0)),
+            "exact": pa.array([1, 2], pa.decimal128(38, 10)),
+            "name": pa.array(["a", "b"], pa.large_string()),
+        }
+    )
+    out = arrow_result(table)
+    assert [f.type for f in out.schema] == [pa.int64(), pa.decimal128(38, 10), pa.string()]
+    assert out.to_pylist() == [
+        {"n": 3, "exact": 1, "name": "a"},
+        {"n": None, "exact": 2, "name": "b"},
+    ]
+    with pytest.raises(pa.ArrowInvalid):
+        arrow_result(pa.table({"n": pa.array([2**70], pa.decimal128(38, 0))}))

@@ -40,6 +40,24 @@ class Engine(Protocol):
         ...
 
 
+def arrow_result(table: pa.Table) -> pa.Table:
+    """One Arrow typing of result tables on every engine: strings as ``string`` (not
+    ``large_string``), and integer sums as ``int64`` (DuckDB's SUM of BIGINT is a 128-bit
+    integer, Arrow ``decimal128(38, 0)``; Spark's is BIGINT). Real decimals stay decimals."""
+    fields = []
+    for field in table.schema:
+        kind = field.type
+        if pa.types.is_large_string(kind):
+            kind = pa.string()
+        elif pa.types.is_large_binary(kind):
+            kind = pa.binary()
+        elif pa.types.is_decimal(kind) and kind.scale == 0:
+            kind = pa.int64()  # a checked cast: a sum past 2**63 fails loudly
+        fields.append(pa.field(field.name, kind, field.nullable))
+    schema = pa.schema(fields)
+    return table if schema.equals(table.schema) else table.cast(schema)
+
+
 def rendered(compiled: CompiledRun, dialect: str) -> list[tuple[str, str]]:
     """The run's statements as SQL text of ``dialect``, named, in execution order."""
     queries = [compiled.unit_rows, *(q for _, q in compiled.results)]

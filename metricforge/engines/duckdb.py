@@ -11,7 +11,7 @@ import pyarrow as pa
 import sqlglot.expressions as exp
 
 from metricforge.compile.query import CompiledRun
-from metricforge.engines.base import EngineInputs, check_statements, rendered
+from metricforge.engines.base import EngineInputs, arrow_result, check_statements, rendered
 from metricforge.errors import EngineError
 
 DEFAULT_MEMORY_LIMIT = "4GB"
@@ -97,4 +97,4 @@ class DuckDBEngine:
 def _fetch(relation: duckdb.DuckDBPyRelation) -> pa.Table:
     fetch = getattr(relation, "to_arrow_table", None) or relation.arrow
     table: pa.Table = fetch()
-    return table
+    return arrow_result(table)

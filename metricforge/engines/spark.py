@@ -5,7 +5,7 @@ so that the package works without the optional extra (``pip install 'metricforge
 
 The engine registers the same two views as DuckDB (``events`` with only the needed columns,
 ``exposures``), runs the materialisation (``CACHE TABLE unit_rows AS ...``), then each
-result query, and returns Arrow tables typed as DuckDB returns them.
+result query, and returns Arrow tables typed as DuckDB's (engines/base.py: arrow_result).
 """
 
 from __future__ import annotations
@@ -23,7 +23,7 @@ from typing import TYPE_CHECKING, Any
 import pyarrow as pa
 
 from metricforge.compile.query import UNIT_TABLE, CompiledRun
-from metricforge.engines.base import EngineInputs, check_statements, rendered
+from metricforge.engines.base import EngineInputs, arrow_result, check_statements, rendered
 from metricforge.errors import EngineError
 from metricforge.schema import EXPOSURE_COLUMNS
 
@@ -116,19 +116,6 @@ def _base_path(files: Sequence[Path]) -> str:
     while "=" in root.name:
         root = root.parent
     return str(root)
-
-
-def _normalise(table: pa.Table) -> pa.Table:
-    """Spark's Arrow types, as DuckDB returns them (large strings become strings)."""
-    fields = []
-    for field in table.schema:
-        kind = field.type
-        if pa.types.is_large_string(kind):
-            kind = pa.string()
-        elif pa.types.is_large_binary(kind):
-            kind = pa.binary()
-        fields.append(pa.field(field.name, kind))
-    return table.cast(pa.schema(fields))
 
 
 class SparkEngine:
@@ -239,7 +226,7 @@ class SparkEngine:
             self._register(spark, inputs)
             spark.sql(statements[0][1])  # CACHE TABLE ... AS is eager
             with _quiet():
-                return {name: _normalise(spark.sql(q).toArrow()) for name, q in statements[1:]}
+                return {name: arrow_result(spark.sql(q).toArrow()) for name, q in statements[1:]}
         except EngineError:
             raise
         except Exception as err:  # noqa: BLE001 - py4j, gRPC and Spark errors alike
