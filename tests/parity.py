@@ -18,6 +18,13 @@ def tolerance(engine_name: str) -> float:
 
 
 def same_value(got: Any, want: Any, rel: float) -> bool:
+    """Equal, with floats (also inside dicts and lists) to ``rel`` relative."""
+    if isinstance(want, dict) and isinstance(got, dict):
+        return got.keys() == want.keys() and all(same_value(got[k], want[k], rel) for k in want)
+    if isinstance(want, list | tuple) and isinstance(got, list | tuple):
+        return len(got) == len(want) and all(
+            same_value(g, w, rel) for g, w in zip(got, want, strict=True)
+        )
     if isinstance(want, float) or isinstance(got, float):
         if got is None or want is None:
             return got is None and want is None

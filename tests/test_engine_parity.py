@@ -23,7 +23,7 @@ from metricforge.runner import execute
 from metricforge.spec import load_plan
 from metricforge.spec.metrics import load_library
 from tests.conftest import PIPELINES, ROOT
-from tests.parity import assert_same_rows, assert_same_tables, tolerance
+from tests.parity import assert_same_rows, assert_same_tables, same_value, tolerance
 
 PIPELINE_FILES = sorted(PIPELINES.glob("*.toml"))
 # Every metric of the shared library at once, with a pre-period: a metric kind added to
@@ -136,3 +136,18 @@ def test_result_tables_have_one_arrow_typing() -> None:
     ]
     with pytest.raises(pa.ArrowInvalid):
         arrow_result(pa.table({"n": pa.array([2**70], pa.decimal128(38, 0))}))
+
+
+@pytest.mark.parametrize(
+    ("got", "want", "same"),
+    [
+        ({"t": [1.0, 2.0]}, {"t": [1.0, 2.0 * (1 + 1e-13)]}, True),
+        ({"t": [1.0, 2.0]}, {"t": [1.0, 2.0 * (1 + 1e-11)]}, False),
+        ({"t": 1}, {"t": 2}, False),
+        ({"t": float("nan")}, {"t": float("nan")}, True),
+        ({"t": None}, {"t": 0.0}, False),
+        ({"t": 1.0}, {"u": 1.0}, False),
+    ],
+)
+def test_parity_compares_nested_values(got: object, want: object, same: bool) -> None:
+    assert same_value(got, want, 1e-12) is same
