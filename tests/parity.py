@@ -42,6 +42,40 @@ def assert_same_rows(got: list[dict[str, Any]], want: list[dict[str, Any]], rel:
             assert same_value(g[key], value, rel), (i, key, g[key], value)
 
 
+# Scorecard fields computed as a difference of two means: an error of SPARK_REL in each mean
+# becomes SPARK_REL * (|value| + |control_value|) in absolute terms, however small the
+# effect (an A/A test's effect is near 0). P-values are compared to an absolute 1e-9.
+_DIFFERENCES = ("abs_effect", "abs_ci_low", "abs_ci_high")
+_RELATIVE_DIFFERENCES = ("rel_effect", "rel_ci_low", "rel_ci_high")
+P_ABS = 1e-9
+
+
+def assert_same_scorecard(
+    got: list[dict[str, Any]], want: list[dict[str, Any]], rel: float
+) -> None:
+    """Scorecard rows: counts and names exactly, values to ``rel``, effects to the error
+    bound of a difference of means whose inputs agree to ``rel``."""
+    if rel == 0:
+        assert_same_rows(got, want, rel)
+        return
+    assert len(got) == len(want)
+    for i, (g, w) in enumerate(zip(got, want, strict=True)):
+        assert g.keys() == w.keys(), i
+        scale = abs(w.get("value") or 0.0) + abs(w.get("control_value") or 0.0)
+        for key, value in w.items():
+            if key in _DIFFERENCES + _RELATIVE_DIFFERENCES + ("p_value",) and all(
+                isinstance(v, float) and math.isfinite(v) for v in (g[key], value)
+            ):
+                bound = 4 * rel * scale
+                if key in _RELATIVE_DIFFERENCES:
+                    bound /= abs(w["control_value"])
+                if key == "p_value":
+                    bound = P_ABS
+                assert math.isclose(g[key], value, rel_tol=rel, abs_tol=bound), (i, key)
+            else:
+                assert same_value(g[key], value, rel), (i, key, g[key], value)
+
+
 def assert_same_tables(
     got: Mapping[str, pa.Table], want: Mapping[str, pa.Table], rel: float
 ) -> None:

@@ -20,7 +20,7 @@ from metricforge.engines.choose import spark_conf
 from metricforge.engines.spark import _base_path
 from metricforge.errors import EngineError
 from tests.conftest import PIPELINES, SKIP_SPARK, event, exposure, write_case
-from tests.parity import assert_same_rows, tolerance
+from tests.parity import assert_same_scorecard, tolerance
 
 
 def _run(cli: CliRunner, *args: str) -> tuple[int, str]:
@@ -111,7 +111,7 @@ def test_run_on_local_spark_writes_the_duckdb_scorecard(
     assert code == 0, out
     want, got = _scorecard(tmp_path / "duck"), _scorecard(tmp_path / "spark")
     assert got["stamp"]["engine"] == "spark"  # type: ignore[index]
-    assert_same_rows(got["metrics"], want["metrics"], tolerance("spark"))  # type: ignore[arg-type]
+    assert_same_scorecard(got["metrics"], want["metrics"], tolerance("spark"))  # type: ignore[arg-type]
 
 
 def _free_port() -> int:
@@ -181,5 +181,5 @@ def test_spark_connect_master_gives_the_duckdb_scorecard(
     assert done.returncode == 0, done.stderr[-2000:]
     want, got = _scorecard(tmp_path / "duck"), _scorecard(tmp_path / "connect")
     assert got["stamp"]["engine"] == "spark"  # type: ignore[index]
-    assert_same_rows(got["metrics"], want["metrics"], tolerance("spark"))  # type: ignore[arg-type]
+    assert_same_scorecard(got["metrics"], want["metrics"], tolerance("spark"))  # type: ignore[arg-type]
     assert got["variants"] == want["variants"]
