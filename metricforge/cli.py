@@ -12,6 +12,7 @@ from typing import Annotated, TypeVar
 import typer
 from rich.console import Console
 
+from metricforge.engines.choose import EngineName
 from metricforge.errors import MetricforgeError
 
 app = typer.Typer(
@@ -80,10 +81,18 @@ def run(
             help="Engine memory limit (default 3.5GB; spills beyond it); 'none': 80% of RAM."
         ),
     ] = None,
+    engine: Annotated[EngineName, typer.Option(help="Engine to run on.")] = EngineName.duckdb,
+    spark_master: Annotated[
+        str | None,
+        typer.Option(help="Spark master URL: local[N] (default local[2]), spark://, yarn, sc://."),
+    ] = None,
+    spark_conf: Annotated[
+        list[str] | None, typer.Option(help="A Spark setting KEY=VALUE (repeatable).")
+    ] = None,
 ) -> None:
     """Compute the scorecard of one experiment and write it to OUT, all or nothing."""
     from metricforge import history
-    from metricforge.engines.duckdb import DuckDBEngine
+    from metricforge.engines.choose import open_engine
     from metricforge.manifest import hash_contents
     from metricforge.progress import terminal_display
     from metricforge.report.files import prepare_output, write_outputs
@@ -95,13 +104,16 @@ def run(
     def action() -> bool:
         plan = load_plan(pipeline, bot_filter=bot_filter)
         prepare_output(out, plan)
-        engine = DuckDBEngine(
+        with open_engine(
+            engine,
             threads=threads,
             memory_limit=memory_limit,
             timeout_s=timeout,
             progress=terminal_display(),
-        )
-        data = execute(plan, engine)
+            spark_master=spark_master,
+            spark_settings=spark_conf or (),
+        ) as chosen:
+            data = execute(plan, chosen)
         if hash_inputs is InputHashes.full:
             hash_contents(data)
         card = build(data)

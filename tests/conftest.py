@@ -1,11 +1,16 @@
-"""Shared fixtures: paths of the repository and a CLI runner."""
+"""Shared fixtures: paths of the repository, a CLI runner and the engines."""
 
 from __future__ import annotations
 
+import os
+from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
 from typer.testing import CliRunner
+
+from metricforge.engines.base import Engine
+from metricforge.engines.duckdb import DuckDBEngine
 
 ROOT = Path(__file__).resolve().parent.parent
 PIPELINES = ROOT / "pipelines"
@@ -15,9 +20,39 @@ REFERENCE = ROOT / "tests" / "reference_data"
 DEMO_EXPERIMENTS = ("checkout_layout", "homepage_aa", "promo_banner", "image_autoload")
 
 
+# The Spark tests run unless this switch is set: a machine without pyspark or Java makes them
+# fail, never pass silently. CI runs them (local mode).
+SKIP_SPARK = os.environ.get("METRICFORGE_SKIP_SPARK") == "1"
+SPARK_MASTER = "local[2]"
+
+
 @pytest.fixture
 def cli() -> CliRunner:
     return CliRunner()
+
+
+@pytest.fixture(scope="session")
+def spark_engine() -> Iterator[Engine]:
+    """One local SparkSession for the whole test session, reused by every Spark test."""
+    if SKIP_SPARK:
+        pytest.skip("METRICFORGE_SKIP_SPARK=1: the Spark tests are switched off")
+    from metricforge.engines.spark import SparkEngine
+
+    engine = SparkEngine(SPARK_MASTER)
+    engine.session()  # fails here, loudly, when pyspark or Java is missing
+    yield engine
+    engine.close()
+
+
+@pytest.fixture(
+    params=["duckdb", pytest.param("spark", marks=[pytest.mark.spark, pytest.mark.slow])]
+)
+def engine(request: pytest.FixtureRequest) -> Engine:
+    """Each engine in turn: a test taking ``engine`` is one shared suite for both."""
+    if request.param == "spark":
+        spark: Engine = request.getfixturevalue("spark_engine")
+        return spark
+    return DuckDBEngine()
 
 
 import datetime as dt  # noqa: E402

@@ -1,4 +1,5 @@
-"""NIST StRD univariate data through the whole pipeline: Parquet → SQL → statistics.
+"""NIST StRD univariate data through the whole pipeline: Parquet → SQL → statistics, on
+each engine (the ``engine`` fixture: DuckDB and Spark).
 
 Source: NIST Statistical Reference Datasets, Univariate Summary Statistics (1999),
 certified values in the files' headers (REFERENCES.md, label READ). Tolerances as
@@ -14,7 +15,7 @@ from pathlib import Path
 
 import pytest
 
-from metricforge.engines.duckdb import DuckDBEngine
+from metricforge.engines.base import Engine
 from metricforge.runner import execute
 from metricforge.spec import load_plan
 from tests.conftest import REFERENCE, event, exposure, write_case
@@ -46,7 +47,14 @@ def nist_values(name: str) -> list[float]:
     ("name", "n", "mean", "sd", "tol_mean", "tol_sd"), CASES, ids=[c[0] for c in CASES]
 )
 def test_certified_values_survive_the_pipeline(
-    tmp_path: Path, name: str, n: int, mean: float, sd: float, tol_mean: float, tol_sd: float
+    engine: Engine,
+    tmp_path: Path,
+    name: str,
+    n: int,
+    mean: float,
+    sd: float,
+    tol_mean: float,
+    tol_sd: float,
 ) -> None:
     values = nist_values(name)
     assert len(values) == n
@@ -57,7 +65,7 @@ def test_certified_values_survive_the_pipeline(
             events.append(event(unit, "purchase", value=value))
             exposures.append(exposure(unit, arm))
     spec = write_case(tmp_path, events, exposures, decision="revenue")
-    data = execute(load_plan(spec), DuckDBEngine())
+    data = execute(load_plan(spec), engine)
     moments = data.moments["revenue"]["control"]
     assert moments.n == len(values)
     assert moments.mean_x == pytest.approx(mean, rel=tol_mean)

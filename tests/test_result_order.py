@@ -14,7 +14,9 @@ import pyarrow as pa
 import pytest
 import sqlglot.expressions as exp
 
-from metricforge.compile.query import UNIT_TABLE, CompiledRun, compile_plan
+from metricforge.compile.query import CompiledRun, compile_plan
+from metricforge.compile.sqlparts import UNIT_TABLE
+from metricforge.engines.base import arrow_result
 from metricforge.engines.duckdb import DuckDBEngine
 from metricforge.engines.unit_order import one_thread_connection
 from metricforge.runner import gather_inputs
@@ -43,7 +45,7 @@ def _ordered_reference(units: pa.Table, query: exp.Select) -> pa.Table:
     con = duckdb.connect(config={"threads": 2})
     con.register(UNIT_TABLE, units)
     table: pa.Table = con.sql(ordered_by_unit(query).sql(dialect="duckdb")).to_arrow_table()
-    return table
+    return arrow_result(table)  # the engines' one Arrow typing of result tables
 
 
 @pytest.fixture(scope="module")

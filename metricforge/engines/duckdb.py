@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import re
 import tempfile
+from collections.abc import Sequence
 from pathlib import Path
 
 import duckdb
@@ -23,8 +24,7 @@ import pyarrow as pa
 import sqlglot.expressions as exp
 
 from metricforge.compile.query import CompiledRun
-from metricforge.engines.base import EngineInputs
-from metricforge.engines.guard import checked_statements
+from metricforge.engines.base import EngineInputs, arrow_result, check_statements, rendered
 from metricforge.engines.unit_order import results_in_unit_order
 from metricforge.engines.watchdog import DEFAULT_TIMEOUT_S, Watchdog
 from metricforge.errors import EngineError
@@ -126,7 +126,7 @@ def _register_views(con: duckdb.DuckDBPyConnection, inputs: EngineInputs) -> Non
     )
 
 
-def _check_with_duckdb(statements: list[tuple[str, str]]) -> None:
+def _check_with_duckdb(statements: Sequence[tuple[str, str]]) -> None:
     """DuckDB's own parser must see exactly one statement of the expected type in each."""
     for name, sql in statements:
         parsed = duckdb.extract_statements(sql)
@@ -158,7 +158,14 @@ class DuckDBEngine:
         return str(duckdb.__version__)
 
     def run(self, compiled: CompiledRun, inputs: EngineInputs) -> dict[str, pa.Table]:
-        statements = checked_statements(compiled, self.dialect)
+        return self.run_statements(rendered(compiled, self.dialect), inputs)
+
+    def run_statements(
+        self, statements: Sequence[tuple[str, str]], inputs: EngineInputs
+    ) -> dict[str, pa.Table]:
+        """Run DuckDB SQL text: first the statement storing ``unit_rows``, then named
+        SELECTs over it (in unit order, on one thread); returns each SELECT's result."""
+        check_statements(statements, self.dialect)
         _check_with_duckdb(statements)
         (_, store), results = statements[0], statements[1:]
         with tempfile.TemporaryDirectory(prefix="metricforge-spill-", dir=self.temp_dir) as tmp:
@@ -182,6 +189,7 @@ class DuckDBEngine:
                         tables = results_in_unit_order(
                             con, results, memory_limit=self.memory_limit, on_open=running.append
                         )
+                        tables = {name: arrow_result(t) for name, t in tables.items()}
                     except duckdb.Error as err:
                         if dog.fired:
                             raise dog.timeout_error() from None

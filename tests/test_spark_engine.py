@@ -1,0 +1,185 @@
+"""The Spark engine from the command line: choosing it, its one-line errors, local mode and a
+Spark Connect server (``sc://``) giving the DuckDB scorecard."""
+
+from __future__ import annotations
+
+import json
+import os
+import socket
+import subprocess
+import sys
+import time
+from collections.abc import Iterator
+from pathlib import Path
+
+import pytest
+from typer.testing import CliRunner
+
+from metricforge.cli import app
+from metricforge.engines.choose import spark_conf
+from metricforge.engines.spark import _base_path
+from metricforge.errors import EngineError
+from tests.conftest import PIPELINES, SKIP_SPARK, event, exposure, write_case
+from tests.parity import assert_same_scorecard, tolerance
+
+
+def _run(cli: CliRunner, *args: str) -> tuple[int, str]:
+    result = cli.invoke(app, ["run", *args])
+    return result.exit_code, result.output
+
+
+def _scorecard(folder: Path) -> dict[str, object]:
+    data: dict[str, object] = json.loads((folder / "scorecard.json").read_text())
+    return data
+
+
+def test_without_pyspark_the_spark_engine_says_how_to_install_it(
+    cli: CliRunner, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.setitem(sys.modules, "pyspark", None)  # as if it were not installed
+    monkeypatch.setitem(sys.modules, "pyspark.sql", None)
+    code, out = _run(
+        cli, str(PIPELINES / "homepage_aa.toml"), "--out", str(tmp_path / "o"), "--engine", "spark"
+    )
+    assert code == 2
+    assert out == "error: the Spark engine needs pyspark: pip install 'metricforge[spark]'\n"
+    assert not (tmp_path / "o").exists()
+
+
+def test_without_java_local_spark_says_so_in_one_line(
+    cli: CliRunner, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.delenv("JAVA_HOME", raising=False)
+    monkeypatch.setattr("shutil.which", lambda name: None)
+    code, out = _run(
+        cli, str(PIPELINES / "homepage_aa.toml"), "--out", str(tmp_path / "o"), "--engine", "spark"
+    )
+    assert code == 2
+    assert out.startswith("error: the Spark engine needs a Java 17+ runtime")
+    assert out.count("\n") == 1
+
+
+@pytest.mark.parametrize(
+    ("args", "message"),
+    [
+        (["--spark-master", "local[1]"], "--spark-master and --spark-conf need --engine spark"),
+        (["--engine", "spark", "--spark-conf", "spark.driver.memory"], "expected KEY=VALUE"),
+        (["--engine", "flink"], "Invalid value for '--engine'"),
+    ],
+)
+def test_engine_options_are_checked(
+    cli: CliRunner, tmp_path: Path, args: list[str], message: str
+) -> None:
+    code, out = _run(cli, str(PIPELINES / "homepage_aa.toml"), "--out", str(tmp_path / "o"), *args)
+    assert code == 2 and message in out
+    assert not (tmp_path / "o").exists()
+
+
+def test_spark_settings_are_key_value_pairs() -> None:
+    assert spark_conf(["spark.executor.memory=8g", " a = b=c "]) == {
+        "spark.executor.memory": "8g",
+        "a": "b=c",
+    }
+    with pytest.raises(EngineError):
+        spark_conf(["=8g"])
+
+
+def test_hive_folders_are_read_from_the_folder_above_the_partitions(tmp_path: Path) -> None:
+    files = [tmp_path / "ev" / f"date=2026-09-0{d}" / "part-0.parquet" for d in (1, 2)]
+    assert _base_path(files) == str((tmp_path / "ev").resolve())
+    assert _base_path(files[:1]) == str((tmp_path / "ev").resolve())
+    assert _base_path([tmp_path / "one.parquet"]) == str(tmp_path.resolve())
+
+
+def _small_case(folder: Path) -> Path:
+    """Forty units with purchases: enough for every statistic, quick on any engine."""
+    units = [(f"u{i:03d}", "control" if i % 2 else "treatment") for i in range(40)]
+    events = [event(u, "purchase", minutes=i, value=1.5 + i % 7) for i, (u, _) in enumerate(units)]
+    spec = write_case(folder, events, [exposure(u, v) for u, v in units], decision="revenue")
+    return spec
+
+
+@pytest.mark.spark
+@pytest.mark.slow
+def test_run_on_local_spark_writes_the_duckdb_scorecard(
+    cli: CliRunner, tmp_path: Path, spark_engine: object
+) -> None:
+    """In-process, the command reuses the test session's Spark (and leaves it running)."""
+    spec = _small_case(tmp_path)
+    assert _run(cli, str(spec), "--out", str(tmp_path / "duck"))[0] == 0
+    code, out = _run(cli, str(spec), "--out", str(tmp_path / "spark"), "--engine", "spark")
+    assert code == 0, out
+    want, got = _scorecard(tmp_path / "duck"), _scorecard(tmp_path / "spark")
+    assert got["stamp"]["engine"] == "spark"  # type: ignore[index]
+    assert_same_scorecard(got["metrics"], want["metrics"], tolerance("spark"))  # type: ignore[arg-type]
+
+
+def _free_port() -> int:
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        port: int = sock.getsockname()[1]
+        return port
+
+
+@pytest.fixture(scope="module")
+def connect_server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
+    """A Spark Connect server on this machine's loopback, started from pyspark's own
+    spark-submit and stopped (by its process id) after the module's tests."""
+    if SKIP_SPARK:
+        pytest.skip("METRICFORGE_SKIP_SPARK=1: the Spark tests are switched off")
+    import pyspark
+
+    home = Path(pyspark.__file__).parent
+    port = _free_port()
+    log = tmp_path_factory.mktemp("connect") / "server.log"
+    command = [
+        str(home / "bin" / "spark-submit"),
+        "--class",
+        "org.apache.spark.sql.connect.service.SparkConnectServer",
+        "--master",
+        "local[2]",
+        "--conf",
+        "spark.ui.enabled=false",
+        "--conf",
+        "spark.connect.grpc.binding.address=127.0.0.1",
+        "--conf",
+        f"spark.connect.grpc.binding.port={port}",
+    ]
+    env = {**os.environ, "SPARK_HOME": str(home)}
+    with log.open("wb") as out:
+        server = subprocess.Popen(command, stdout=out, stderr=subprocess.STDOUT, env=env)
+    try:
+        deadline = time.monotonic() + 180
+        while True:
+            assert server.poll() is None, log.read_text()[-2000:]
+            assert time.monotonic() < deadline, "Spark Connect server did not start"
+            with socket.socket() as sock:
+                if sock.connect_ex(("127.0.0.1", port)) == 0:
+                    break
+            time.sleep(1)
+        yield f"sc://127.0.0.1:{port}"
+    finally:
+        server.terminate()
+        try:
+            server.wait(timeout=60)
+        except subprocess.TimeoutExpired:
+            server.kill()
+            server.wait()
+
+
+@pytest.mark.spark
+@pytest.mark.slow
+def test_spark_connect_master_gives_the_duckdb_scorecard(
+    cli: CliRunner, tmp_path: Path, connect_server: str
+) -> None:
+    """A separate process (a Connect client cannot share a process with a local session)."""
+    pipeline = str(_small_case(tmp_path))
+    assert _run(cli, pipeline, "--out", str(tmp_path / "duck"))[0] == 0
+    command = [sys.executable, "-m", "metricforge.cli", "run", pipeline, "--out"]
+    command += [str(tmp_path / "connect"), "--engine", "spark", "--spark-master", connect_server]
+    done = subprocess.run(command, capture_output=True, text=True, timeout=600, check=False)
+    assert done.returncode == 0, done.stderr[-2000:]
+    want, got = _scorecard(tmp_path / "duck"), _scorecard(tmp_path / "connect")
+    assert got["stamp"]["engine"] == "spark"  # type: ignore[index]
+    assert_same_scorecard(got["metrics"], want["metrics"], tolerance("spark"))  # type: ignore[arg-type]
+    assert got["variants"] == want["variants"]
