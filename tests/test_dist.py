@@ -6,7 +6,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from hypothesis import given
+from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from scipy import stats as sst
 
@@ -27,23 +27,27 @@ def same_bits(a: object, b: object) -> bool:
     return bool(np.all(both_nan | (x.view(np.int64) == y.view(np.int64))))
 
 
+@settings(deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(REALS)
 def test_normal_tails_are_scipy_stats(x: float) -> None:
     assert same_bits(dist.norm_sf(x), sst.norm.sf(x))
     assert same_bits(dist.norm_cdf(x), sst.norm.cdf(x))
 
 
+@settings(deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(PROBS)
 def test_normal_quantile_is_scipy_stats(q: float) -> None:
     assert same_bits(dist.norm_ppf(q), sst.norm.ppf(q))
 
 
+@settings(deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(REALS, DFS)
 def test_student_tail_is_scipy_stats(x: float, df: float) -> None:
     with np.errstate(all="ignore"):
         assert same_bits(dist.t_sf(x, df), sst.t.sf(x, df))
 
 
+@settings(deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(PROBS, DFS)
 def test_student_quantile_is_scipy_stats(q: float, df: float) -> None:
     with np.errstate(all="ignore"):
@@ -60,6 +64,7 @@ def test_arrays_broadcast_like_scipy_stats() -> None:
     assert same_bits(dist.chi2_sf(np.abs(x), df), sst.chi2.sf(np.abs(x), df))
 
 
+@settings(deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(st.lists(st.integers(0, 10**9), min_size=2, max_size=6), st.data())
 def test_goodness_of_fit_is_scipy_chisquare(counts: list[int], data: st.DataObject) -> None:
     total = sum(counts)
@@ -75,6 +80,7 @@ def test_goodness_of_fit_is_scipy_chisquare(counts: list[int], data: st.DataObje
     assert same_bits(stat, ref.statistic) and same_bits(p, ref.pvalue)
 
 
+@settings(deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(st.lists(st.tuples(st.integers(0, 10**7), st.integers(1, 10**7)), min_size=2, max_size=5))
 def test_independence_is_scipy_chi2_contingency(groups: list[tuple[int, int]]) -> None:
     flagged = [min(f, t) for f, t in groups]
