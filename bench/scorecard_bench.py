@@ -150,6 +150,15 @@ def _moments(row: dict[str, Any], metric: str) -> Any:
     return Moments.of_mean(n, float(row[f"{metric}__mean_x"]), float(row[f"{metric}__var_x"]))
 
 
+def _hypothesis(row: dict[str, Any]) -> dict[str, Any]:
+    """The scorecard row's test as arguments of ``compare``: two-sided, or one-sided for a
+    guardrail ("... higher is worse": side 1) with its non-inferiority margin if any."""
+    text = str(row.get("hypothesis") or "")
+    if not text.startswith(("one-sided", "non-inferiority")):
+        return {}
+    return {"side": 1 if "higher is worse" in text else -1, "margin": row.get("margin")}
+
+
 def compare_contender(
     tool: dict[str, Any], rows: list[dict[str, Any]]
 ) -> list[tuple[str, Any, Any]]:
@@ -175,7 +184,7 @@ def compare_contender(
             continue
         treatment = _moments(clean[row["variant"]], name)
         control = _moments(clean[row["control"]], name)
-        effect = compare(treatment, control, alpha=row["alpha"])
+        effect = compare(treatment, control, alpha=row["alpha"], **_hypothesis(row))
         fields = ["value", "control_value", "abs_effect"]
         if row.get("method") == effect.method:
             fields += ["abs_ci_low", "abs_ci_high", "rel_effect", "rel_ci_low", "rel_ci_high"]

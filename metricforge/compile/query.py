@@ -38,7 +38,7 @@ from metricforge.compile.quality import (
     data_quality_query,
     unit_columns,
 )
-from metricforge.compile.sessions import carried, periods, sessions
+from metricforge.compile.sessions import periods, sessions
 from metricforge.compile.sqlparts import (
     BIGINT,
     DOUBLE,
@@ -149,9 +149,27 @@ class _Builder:
     # -- stage 2: compile/sessions.py -------------------------------------------------------
     # -- stage 3 -------------------------------------------------------------------------
     def units(self) -> exp.Select:
+        """One row per unit: its sessions rolled up, joined to its exposure facts (variant,
+        variant count, first exposure, repeated exposure rows). The facts depend on the unit
+        alone, so they join the 1-per-unit rollup instead of riding through both groupings."""
+        u, f = "u", "f"
+        facts = ("variant", "n_variants", "first_ts", DUPLICATE_EXPOSURES)
+        rollup = exp.alias_(exp.Subquery(this=self._rollup()), u, table=True)
+        return (
+            exp.select(
+                *[_col(name, f) for name in facts],
+                exp.Column(this=exp.Star(), table=exp.to_identifier(u)),
+            )
+            .from_(rollup)
+            .join(
+                exp.alias_(exp.to_table("first_exposure"), f, table=True),
+                on=_col("unit", u).eq(_col("unit", f)),
+            )
+        )
+
+    def _rollup(self) -> exp.Select:
         select = exp.select(
             _col("unit"),
-            *carried(),
             exp.alias_(exp.cast(exp.Sum(this=_col("n_events")), BIGINT), "n_events"),
             exp.alias_(exp.Max(this=_col("n_events")), "max_session_events"),
             exp.alias_(exp.Count(this=_col("session")), "n_sessions"),

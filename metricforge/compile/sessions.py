@@ -17,7 +17,7 @@ import datetime as dt
 import sqlglot.expressions as exp
 
 from metricforge.compile.expressions import qualify
-from metricforge.compile.quality import DUPLICATE_EXPOSURES, usable, value_checks
+from metricforge.compile.quality import usable, value_checks
 from metricforge.compile.sqlparts import DOUBLE, timestamp
 from metricforge.compile.sqlparts import all_of as _and
 from metricforge.compile.sqlparts import case as _case
@@ -26,16 +26,6 @@ from metricforge.compile.sqlparts import lit as _lit
 from metricforge.spec.model import BotRule, Kind, MetricDef, Plan, RuleKind
 
 EXACT = exp.DataType.build("DECIMAL(38, 10)")
-
-
-def carried(table: str | None = None) -> list[exp.Expr]:
-    """A unit's exposure facts (variant, variant count, first exposure, repeated exposure
-    rows), carried through a grouping by unit: they depend on the unit alone, so they are
-    not grouping keys (fewer keys to hash)."""
-    return [
-        exp.alias_(exp.AnyValue(this=_col(name, table)), name)
-        for name in ("variant", "n_variants", "first_ts", DUPLICATE_EXPOSURES)
-    ]
 
 
 def periods(plan: Plan, e: str = "e", f: str = "f") -> list[tuple[str, exp.Expr]]:
@@ -83,7 +73,6 @@ def sessions(plan: Plan) -> exp.Select:
     )
     select = exp.select(
         _col("unit", f),
-        *carried(f),
         exp.alias_(_col("session_id", e), "session"),
         exp.alias_(n_events, "n_events"),
     )

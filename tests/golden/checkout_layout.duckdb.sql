@@ -36,10 +36,6 @@ WITH first_exposure AS (
 ), sessions AS (
   SELECT
     f.unit,
-    ANY_VALUE(f.variant) AS variant,
-    ANY_VALUE(f.n_variants) AS n_variants,
-    ANY_VALUE(f.first_ts) AS first_ts,
-    ANY_VALUE(f.dq_duplicate_exposures) AS dq_duplicate_exposures,
     e.session_id AS session,
     COUNT(CASE WHEN e.ts >= f.first_ts THEN 1 END) AS n_events,
     COUNT(CASE WHEN NOT (
@@ -377,61 +373,67 @@ WITH first_exposure AS (
     e.session_id
 ), units AS (
   SELECT
-    unit,
-    ANY_VALUE(variant) AS variant,
-    ANY_VALUE(n_variants) AS n_variants,
-    ANY_VALUE(first_ts) AS first_ts,
-    ANY_VALUE(dq_duplicate_exposures) AS dq_duplicate_exposures,
-    CAST(SUM(n_events) AS BIGINT) AS n_events,
-    MAX(n_events) AS max_session_events,
-    COUNT(session) AS n_sessions,
-    CAST(SUM(n_pre_events) AS BIGINT) AS n_pre_events,
-    BOOL_OR(CAST(bot_rule_0 AS BOOLEAN)) AS bot_rule_0,
-    CAST(SUM(dq_ignored_revenue) AS BIGINT) AS dq_ignored_revenue,
-    CAST(SUM(dq_negative_revenue) AS BIGINT) AS dq_negative_revenue,
-    CAST(SUM(dq_ignored_page_latency) AS BIGINT) AS dq_ignored_page_latency,
-    CAST(SUM(dq_negative_page_latency) AS BIGINT) AS dq_negative_page_latency,
-    CAST(SUM(dq_ignored_revenue_winsorised) AS BIGINT) AS dq_ignored_revenue_winsorised,
-    CAST(SUM(dq_negative_revenue_winsorised) AS BIGINT) AS dq_negative_revenue_winsorised,
-    CAST(COALESCE(SUM(s_revenue), 0) AS DOUBLE) AS u_revenue,
-    CAST(COALESCE(SUM(spre_revenue), 0) AS DOUBLE) AS upre_revenue,
-    CAST(COALESCE(SUM(s_unsubscribes), 0) AS BIGINT) AS u_unsubscribes,
-    CAST(COALESCE(SUM(spre_unsubscribes), 0) AS BIGINT) AS upre_unsubscribes,
-    CASE
-      WHEN SUM(c_page_latency) > 0
-      THEN CAST(SUM(s_page_latency) AS DOUBLE) / CAST(SUM(c_page_latency) AS DOUBLE)
-    END AS u_page_latency,
-    CASE
-      WHEN SUM(cpre_page_latency) > 0
-      THEN CAST(SUM(spre_page_latency) AS DOUBLE) / CAST(SUM(cpre_page_latency) AS DOUBLE)
-    END AS upre_page_latency,
-    CAST(COALESCE(SUM(s_page_latency_p95), 0) AS BIGINT) AS u_page_latency_p95,
-    LIST_SORT(
-      FLATTEN(ARRAY_AGG(l_page_latency_p95) FILTER(WHERE
-        NOT l_page_latency_p95 IS NULL))
-    ) AS l_page_latency_p95,
-    CAST(COALESCE(SUM(spre_page_latency_p95), 0) AS BIGINT) AS upre_page_latency_p95,
-    CAST(COALESCE(SUM(s_purchases), 0) AS BIGINT) AS u_purchases,
-    CAST(COALESCE(SUM(spre_purchases), 0) AS BIGINT) AS upre_purchases,
-    CAST(COALESCE(SUM(s_refunds), 0) AS BIGINT) AS u_refunds,
-    CAST(COALESCE(SUM(spre_refunds), 0) AS BIGINT) AS upre_refunds,
-    CASE WHEN COALESCE(SUM(s_buyer_share), 0) > 0 THEN 1 ELSE 0 END AS u_buyer_share,
-    CASE WHEN COALESCE(SUM(spre_buyer_share), 0) > 0 THEN 1 ELSE 0 END AS upre_buyer_share,
-    CAST(COALESCE(SUM(s_mobile_purchases), 0) AS BIGINT) AS u_mobile_purchases,
-    CAST(COALESCE(SUM(spre_mobile_purchases), 0) AS BIGINT) AS upre_mobile_purchases,
-    CAST(COALESCE(SUM(s_clicks), 0) AS BIGINT) AS u_clicks,
-    CAST(COALESCE(SUM(spre_clicks), 0) AS BIGINT) AS upre_clicks,
-    CAST(COALESCE(SUM(s_impressions), 0) AS BIGINT) AS u_impressions,
-    CAST(COALESCE(SUM(spre_impressions), 0) AS BIGINT) AS upre_impressions,
-    CAST(COALESCE(SUM(s_session_success), 0) AS BIGINT) AS u_session_success,
-    COUNT(CASE WHEN n_events > 0 THEN session END) AS d_session_success,
-    CAST(COALESCE(SUM(spre_session_success), 0) AS BIGINT) AS upre_session_success,
-    COUNT(CASE WHEN n_pre_events > 0 THEN session END) AS dpre_session_success,
-    CAST(COALESCE(SUM(s_revenue_winsorised), 0) AS DOUBLE) AS u_revenue_winsorised,
-    CAST(COALESCE(SUM(spre_revenue_winsorised), 0) AS DOUBLE) AS upre_revenue_winsorised
-  FROM sessions
-  GROUP BY
-    unit
+    f.variant,
+    f.n_variants,
+    f.first_ts,
+    f.dq_duplicate_exposures,
+    u.*
+  FROM (
+    SELECT
+      unit,
+      CAST(SUM(n_events) AS BIGINT) AS n_events,
+      MAX(n_events) AS max_session_events,
+      COUNT(session) AS n_sessions,
+      CAST(SUM(n_pre_events) AS BIGINT) AS n_pre_events,
+      BOOL_OR(CAST(bot_rule_0 AS BOOLEAN)) AS bot_rule_0,
+      CAST(SUM(dq_ignored_revenue) AS BIGINT) AS dq_ignored_revenue,
+      CAST(SUM(dq_negative_revenue) AS BIGINT) AS dq_negative_revenue,
+      CAST(SUM(dq_ignored_page_latency) AS BIGINT) AS dq_ignored_page_latency,
+      CAST(SUM(dq_negative_page_latency) AS BIGINT) AS dq_negative_page_latency,
+      CAST(SUM(dq_ignored_revenue_winsorised) AS BIGINT) AS dq_ignored_revenue_winsorised,
+      CAST(SUM(dq_negative_revenue_winsorised) AS BIGINT) AS dq_negative_revenue_winsorised,
+      CAST(COALESCE(SUM(s_revenue), 0) AS DOUBLE) AS u_revenue,
+      CAST(COALESCE(SUM(spre_revenue), 0) AS DOUBLE) AS upre_revenue,
+      CAST(COALESCE(SUM(s_unsubscribes), 0) AS BIGINT) AS u_unsubscribes,
+      CAST(COALESCE(SUM(spre_unsubscribes), 0) AS BIGINT) AS upre_unsubscribes,
+      CASE
+        WHEN SUM(c_page_latency) > 0
+        THEN CAST(SUM(s_page_latency) AS DOUBLE) / CAST(SUM(c_page_latency) AS DOUBLE)
+      END AS u_page_latency,
+      CASE
+        WHEN SUM(cpre_page_latency) > 0
+        THEN CAST(SUM(spre_page_latency) AS DOUBLE) / CAST(SUM(cpre_page_latency) AS DOUBLE)
+      END AS upre_page_latency,
+      CAST(COALESCE(SUM(s_page_latency_p95), 0) AS BIGINT) AS u_page_latency_p95,
+      LIST_SORT(
+        FLATTEN(ARRAY_AGG(l_page_latency_p95) FILTER(WHERE
+          NOT l_page_latency_p95 IS NULL))
+      ) AS l_page_latency_p95,
+      CAST(COALESCE(SUM(spre_page_latency_p95), 0) AS BIGINT) AS upre_page_latency_p95,
+      CAST(COALESCE(SUM(s_purchases), 0) AS BIGINT) AS u_purchases,
+      CAST(COALESCE(SUM(spre_purchases), 0) AS BIGINT) AS upre_purchases,
+      CAST(COALESCE(SUM(s_refunds), 0) AS BIGINT) AS u_refunds,
+      CAST(COALESCE(SUM(spre_refunds), 0) AS BIGINT) AS upre_refunds,
+      CASE WHEN COALESCE(SUM(s_buyer_share), 0) > 0 THEN 1 ELSE 0 END AS u_buyer_share,
+      CASE WHEN COALESCE(SUM(spre_buyer_share), 0) > 0 THEN 1 ELSE 0 END AS upre_buyer_share,
+      CAST(COALESCE(SUM(s_mobile_purchases), 0) AS BIGINT) AS u_mobile_purchases,
+      CAST(COALESCE(SUM(spre_mobile_purchases), 0) AS BIGINT) AS upre_mobile_purchases,
+      CAST(COALESCE(SUM(s_clicks), 0) AS BIGINT) AS u_clicks,
+      CAST(COALESCE(SUM(spre_clicks), 0) AS BIGINT) AS upre_clicks,
+      CAST(COALESCE(SUM(s_impressions), 0) AS BIGINT) AS u_impressions,
+      CAST(COALESCE(SUM(spre_impressions), 0) AS BIGINT) AS upre_impressions,
+      CAST(COALESCE(SUM(s_session_success), 0) AS BIGINT) AS u_session_success,
+      COUNT(CASE WHEN n_events > 0 THEN session END) AS d_session_success,
+      CAST(COALESCE(SUM(spre_session_success), 0) AS BIGINT) AS upre_session_success,
+      COUNT(CASE WHEN n_pre_events > 0 THEN session END) AS dpre_session_success,
+      CAST(COALESCE(SUM(s_revenue_winsorised), 0) AS DOUBLE) AS u_revenue_winsorised,
+      CAST(COALESCE(SUM(spre_revenue_winsorised), 0) AS DOUBLE) AS upre_revenue_winsorised
+    FROM sessions
+    GROUP BY
+      unit
+  ) AS u
+  JOIN first_exposure AS f
+    ON u.unit = f.unit
 )
 SELECT
   unit,
