@@ -93,8 +93,9 @@ class _Builder:
         self.spec = plan.spec
         self.dialect = dialect
         # Aggregates ordered by unit where the engine's float sums depend on row order: in
-        # DuckDB inside the unit query (stitching) and in result queries that do not read
-        # unit_rows straight (joins, CTEs); `moments` relies on the engine's unit order.
+        # DuckDB inside the unit query (stitching) and in result queries whose rows pass
+        # through ranks or windows (quantile metrics). Result queries that read unit_rows
+        # straight (moments, bot_events, cuped, history) rely on the engine's unit order.
         self.ordered = dialect == "duckdb"
 
     # -- stage 1 -------------------------------------------------------------------------
@@ -387,7 +388,7 @@ class _Builder:
         results = (
             ("moments", self.moments()),
             ("data_quality", data_quality_query(self.plan, UNIT_TABLE)),
-            *check_results(self.plan, self.ordered),
+            *check_results(self.plan),
             *extra_results(self.plan, UNIT_TABLE, ordered=self.ordered),
         )
         return CompiledRun(unit_rows=self.unit_rows(), results=results)

@@ -644,13 +644,13 @@ ORDER BY
 SELECT
   variant,
   COUNT(*) AS n_units,
-  AVG(CAST(CASE WHEN is_bot THEN n_events ELSE 0 END AS DOUBLE) ORDER BY unit) AS mean_removed,
-  AVG(CAST(n_events AS DOUBLE) ORDER BY unit) AS mean_events,
-  VARIANCE(CAST(CASE WHEN is_bot THEN n_events ELSE 0 END AS DOUBLE) ORDER BY unit) AS var_removed,
-  VARIANCE(CAST(n_events AS DOUBLE) ORDER BY unit) AS var_events,
+  AVG(CAST(CASE WHEN is_bot THEN n_events ELSE 0 END AS DOUBLE)) AS mean_removed,
+  AVG(CAST(n_events AS DOUBLE)) AS mean_events,
+  VARIANCE(CAST(CASE WHEN is_bot THEN n_events ELSE 0 END AS DOUBLE)) AS var_removed,
+  VARIANCE(CAST(n_events AS DOUBLE)) AS var_events,
   COVAR_SAMP(
     CAST(CASE WHEN is_bot THEN n_events ELSE 0 END AS DOUBLE),
-    CAST(n_events AS DOUBLE) ORDER BY unit
+    CAST(n_events AS DOUBLE)
   ) AS cov_removed_events
 FROM unit_rows
 GROUP BY
@@ -753,75 +753,65 @@ WITH cap_values AS (
 SELECT
   variant,
   COUNT(CAST(x_revenue AS DOUBLE)) AS revenue__cv_n,
-  AVG(CAST(x_revenue AS DOUBLE) ORDER BY unit) AS revenue__cv_mean_x,
-  AVG(CAST(xpre_revenue AS DOUBLE) ORDER BY unit) AS revenue__cv_mean_c,
-  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS revenue__cv_mean_h,
-  VARIANCE(CAST(x_revenue AS DOUBLE) ORDER BY unit) AS revenue__cv_cov_x_x,
-  COVAR_SAMP(CAST(x_revenue AS DOUBLE), CAST(xpre_revenue AS DOUBLE) ORDER BY unit) AS revenue__cv_cov_x_c,
-  COVAR_SAMP(
-    CAST(x_revenue AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
-  ) AS revenue__cv_cov_x_h,
-  VARIANCE(CAST(xpre_revenue AS DOUBLE) ORDER BY unit) AS revenue__cv_cov_c_c,
-  COVAR_SAMP(
-    CAST(xpre_revenue AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
-  ) AS revenue__cv_cov_c_h,
-  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS revenue__cv_cov_h_h,
+  AVG(CAST(x_revenue AS DOUBLE)) AS revenue__cv_mean_x,
+  AVG(CAST(xpre_revenue AS DOUBLE)) AS revenue__cv_mean_c,
+  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS revenue__cv_mean_h,
+  VARIANCE(CAST(x_revenue AS DOUBLE)) AS revenue__cv_cov_x_x,
+  COVAR_SAMP(CAST(x_revenue AS DOUBLE), CAST(xpre_revenue AS DOUBLE)) AS revenue__cv_cov_x_c,
+  COVAR_SAMP(CAST(x_revenue AS DOUBLE), CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS revenue__cv_cov_x_h,
+  VARIANCE(CAST(xpre_revenue AS DOUBLE)) AS revenue__cv_cov_c_c,
+  COVAR_SAMP(CAST(xpre_revenue AS DOUBLE), CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS revenue__cv_cov_c_h,
+  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS revenue__cv_cov_h_h,
   COUNT(CAST(x_unsubscribes AS DOUBLE)) AS unsubscribes__cv_n,
-  AVG(CAST(x_unsubscribes AS DOUBLE) ORDER BY unit) AS unsubscribes__cv_mean_x,
-  AVG(CAST(xpre_unsubscribes AS DOUBLE) ORDER BY unit) AS unsubscribes__cv_mean_c,
-  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS unsubscribes__cv_mean_h,
-  VARIANCE(CAST(x_unsubscribes AS DOUBLE) ORDER BY unit) AS unsubscribes__cv_cov_x_x,
-  COVAR_SAMP(CAST(x_unsubscribes AS DOUBLE), CAST(xpre_unsubscribes AS DOUBLE) ORDER BY unit) AS unsubscribes__cv_cov_x_c,
+  AVG(CAST(x_unsubscribes AS DOUBLE)) AS unsubscribes__cv_mean_x,
+  AVG(CAST(xpre_unsubscribes AS DOUBLE)) AS unsubscribes__cv_mean_c,
+  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS unsubscribes__cv_mean_h,
+  VARIANCE(CAST(x_unsubscribes AS DOUBLE)) AS unsubscribes__cv_cov_x_x,
+  COVAR_SAMP(CAST(x_unsubscribes AS DOUBLE), CAST(xpre_unsubscribes AS DOUBLE)) AS unsubscribes__cv_cov_x_c,
   COVAR_SAMP(
     CAST(x_unsubscribes AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS unsubscribes__cv_cov_x_h,
-  VARIANCE(CAST(xpre_unsubscribes AS DOUBLE) ORDER BY unit) AS unsubscribes__cv_cov_c_c,
+  VARIANCE(CAST(xpre_unsubscribes AS DOUBLE)) AS unsubscribes__cv_cov_c_c,
   COVAR_SAMP(
     CAST(xpre_unsubscribes AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS unsubscribes__cv_cov_c_h,
-  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS unsubscribes__cv_cov_h_h,
+  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS unsubscribes__cv_cov_h_h,
   COUNT(CAST(CASE WHEN NOT x_page_latency IS NULL THEN x_page_latency END AS DOUBLE)) AS page_latency__cv_n,
-  AVG(
-    CAST(CASE WHEN NOT x_page_latency IS NULL THEN x_page_latency END AS DOUBLE) ORDER BY unit
-  ) AS page_latency__cv_mean_x,
+  AVG(CAST(CASE WHEN NOT x_page_latency IS NULL THEN x_page_latency END AS DOUBLE)) AS page_latency__cv_mean_x,
   AVG(
     CAST(CASE
       WHEN NOT x_page_latency IS NULL
       THEN COALESCE(xpre_page_latency, CAST(0.0 AS DOUBLE))
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS page_latency__cv_mean_c,
   AVG(
     CAST(CASE
       WHEN NOT x_page_latency IS NULL
       THEN CASE WHEN NOT xpre_page_latency IS NULL THEN 1 ELSE 0 END
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS page_latency__cv_mean_h,
-  VARIANCE(
-    CAST(CASE WHEN NOT x_page_latency IS NULL THEN x_page_latency END AS DOUBLE) ORDER BY unit
-  ) AS page_latency__cv_cov_x_x,
+  VARIANCE(CAST(CASE WHEN NOT x_page_latency IS NULL THEN x_page_latency END AS DOUBLE)) AS page_latency__cv_cov_x_x,
   COVAR_SAMP(
     CAST(CASE WHEN NOT x_page_latency IS NULL THEN x_page_latency END AS DOUBLE),
     CAST(CASE
       WHEN NOT x_page_latency IS NULL
       THEN COALESCE(xpre_page_latency, CAST(0.0 AS DOUBLE))
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS page_latency__cv_cov_x_c,
   COVAR_SAMP(
     CAST(CASE WHEN NOT x_page_latency IS NULL THEN x_page_latency END AS DOUBLE),
     CAST(CASE
       WHEN NOT x_page_latency IS NULL
       THEN CASE WHEN NOT xpre_page_latency IS NULL THEN 1 ELSE 0 END
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS page_latency__cv_cov_x_h,
   VARIANCE(
     CAST(CASE
       WHEN NOT x_page_latency IS NULL
       THEN COALESCE(xpre_page_latency, CAST(0.0 AS DOUBLE))
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS page_latency__cv_cov_c_c,
   COVAR_SAMP(
     CAST(CASE
@@ -831,181 +821,145 @@ SELECT
     CAST(CASE
       WHEN NOT x_page_latency IS NULL
       THEN CASE WHEN NOT xpre_page_latency IS NULL THEN 1 ELSE 0 END
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS page_latency__cv_cov_c_h,
   VARIANCE(
     CAST(CASE
       WHEN NOT x_page_latency IS NULL
       THEN CASE WHEN NOT xpre_page_latency IS NULL THEN 1 ELSE 0 END
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS page_latency__cv_cov_h_h,
   COUNT(CAST(x_purchases AS DOUBLE)) AS purchases__cv_n,
-  AVG(CAST(x_purchases AS DOUBLE) ORDER BY unit) AS purchases__cv_mean_x,
-  AVG(CAST(xpre_purchases AS DOUBLE) ORDER BY unit) AS purchases__cv_mean_c,
-  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS purchases__cv_mean_h,
-  VARIANCE(CAST(x_purchases AS DOUBLE) ORDER BY unit) AS purchases__cv_cov_x_x,
-  COVAR_SAMP(CAST(x_purchases AS DOUBLE), CAST(xpre_purchases AS DOUBLE) ORDER BY unit) AS purchases__cv_cov_x_c,
-  COVAR_SAMP(
-    CAST(x_purchases AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
-  ) AS purchases__cv_cov_x_h,
-  VARIANCE(CAST(xpre_purchases AS DOUBLE) ORDER BY unit) AS purchases__cv_cov_c_c,
+  AVG(CAST(x_purchases AS DOUBLE)) AS purchases__cv_mean_x,
+  AVG(CAST(xpre_purchases AS DOUBLE)) AS purchases__cv_mean_c,
+  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS purchases__cv_mean_h,
+  VARIANCE(CAST(x_purchases AS DOUBLE)) AS purchases__cv_cov_x_x,
+  COVAR_SAMP(CAST(x_purchases AS DOUBLE), CAST(xpre_purchases AS DOUBLE)) AS purchases__cv_cov_x_c,
+  COVAR_SAMP(CAST(x_purchases AS DOUBLE), CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS purchases__cv_cov_x_h,
+  VARIANCE(CAST(xpre_purchases AS DOUBLE)) AS purchases__cv_cov_c_c,
   COVAR_SAMP(
     CAST(xpre_purchases AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS purchases__cv_cov_c_h,
-  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS purchases__cv_cov_h_h,
+  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS purchases__cv_cov_h_h,
   COUNT(CAST(x_refunds AS DOUBLE)) AS refunds__cv_n,
-  AVG(CAST(x_refunds AS DOUBLE) ORDER BY unit) AS refunds__cv_mean_x,
-  AVG(CAST(xpre_refunds AS DOUBLE) ORDER BY unit) AS refunds__cv_mean_c,
-  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS refunds__cv_mean_h,
-  VARIANCE(CAST(x_refunds AS DOUBLE) ORDER BY unit) AS refunds__cv_cov_x_x,
-  COVAR_SAMP(CAST(x_refunds AS DOUBLE), CAST(xpre_refunds AS DOUBLE) ORDER BY unit) AS refunds__cv_cov_x_c,
-  COVAR_SAMP(
-    CAST(x_refunds AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
-  ) AS refunds__cv_cov_x_h,
-  VARIANCE(CAST(xpre_refunds AS DOUBLE) ORDER BY unit) AS refunds__cv_cov_c_c,
-  COVAR_SAMP(
-    CAST(xpre_refunds AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
-  ) AS refunds__cv_cov_c_h,
-  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS refunds__cv_cov_h_h,
+  AVG(CAST(x_refunds AS DOUBLE)) AS refunds__cv_mean_x,
+  AVG(CAST(xpre_refunds AS DOUBLE)) AS refunds__cv_mean_c,
+  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS refunds__cv_mean_h,
+  VARIANCE(CAST(x_refunds AS DOUBLE)) AS refunds__cv_cov_x_x,
+  COVAR_SAMP(CAST(x_refunds AS DOUBLE), CAST(xpre_refunds AS DOUBLE)) AS refunds__cv_cov_x_c,
+  COVAR_SAMP(CAST(x_refunds AS DOUBLE), CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS refunds__cv_cov_x_h,
+  VARIANCE(CAST(xpre_refunds AS DOUBLE)) AS refunds__cv_cov_c_c,
+  COVAR_SAMP(CAST(xpre_refunds AS DOUBLE), CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS refunds__cv_cov_c_h,
+  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS refunds__cv_cov_h_h,
   COUNT(CAST(x_buyer_share AS DOUBLE)) AS buyer_share__cv_n,
-  AVG(CAST(x_buyer_share AS DOUBLE) ORDER BY unit) AS buyer_share__cv_mean_x,
-  AVG(CAST(xpre_buyer_share AS DOUBLE) ORDER BY unit) AS buyer_share__cv_mean_c,
-  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS buyer_share__cv_mean_h,
-  VARIANCE(CAST(x_buyer_share AS DOUBLE) ORDER BY unit) AS buyer_share__cv_cov_x_x,
-  COVAR_SAMP(CAST(x_buyer_share AS DOUBLE), CAST(xpre_buyer_share AS DOUBLE) ORDER BY unit) AS buyer_share__cv_cov_x_c,
-  COVAR_SAMP(
-    CAST(x_buyer_share AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
-  ) AS buyer_share__cv_cov_x_h,
-  VARIANCE(CAST(xpre_buyer_share AS DOUBLE) ORDER BY unit) AS buyer_share__cv_cov_c_c,
+  AVG(CAST(x_buyer_share AS DOUBLE)) AS buyer_share__cv_mean_x,
+  AVG(CAST(xpre_buyer_share AS DOUBLE)) AS buyer_share__cv_mean_c,
+  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS buyer_share__cv_mean_h,
+  VARIANCE(CAST(x_buyer_share AS DOUBLE)) AS buyer_share__cv_cov_x_x,
+  COVAR_SAMP(CAST(x_buyer_share AS DOUBLE), CAST(xpre_buyer_share AS DOUBLE)) AS buyer_share__cv_cov_x_c,
+  COVAR_SAMP(CAST(x_buyer_share AS DOUBLE), CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS buyer_share__cv_cov_x_h,
+  VARIANCE(CAST(xpre_buyer_share AS DOUBLE)) AS buyer_share__cv_cov_c_c,
   COVAR_SAMP(
     CAST(xpre_buyer_share AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS buyer_share__cv_cov_c_h,
-  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS buyer_share__cv_cov_h_h,
+  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS buyer_share__cv_cov_h_h,
   COUNT(CAST(x_mobile_purchases AS DOUBLE)) AS mobile_purchases__cv_n,
-  AVG(CAST(x_mobile_purchases AS DOUBLE) ORDER BY unit) AS mobile_purchases__cv_mean_x,
-  AVG(CAST(xpre_mobile_purchases AS DOUBLE) ORDER BY unit) AS mobile_purchases__cv_mean_c,
-  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS mobile_purchases__cv_mean_h,
-  VARIANCE(CAST(x_mobile_purchases AS DOUBLE) ORDER BY unit) AS mobile_purchases__cv_cov_x_x,
+  AVG(CAST(x_mobile_purchases AS DOUBLE)) AS mobile_purchases__cv_mean_x,
+  AVG(CAST(xpre_mobile_purchases AS DOUBLE)) AS mobile_purchases__cv_mean_c,
+  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS mobile_purchases__cv_mean_h,
+  VARIANCE(CAST(x_mobile_purchases AS DOUBLE)) AS mobile_purchases__cv_cov_x_x,
+  COVAR_SAMP(CAST(x_mobile_purchases AS DOUBLE), CAST(xpre_mobile_purchases AS DOUBLE)) AS mobile_purchases__cv_cov_x_c,
   COVAR_SAMP(
     CAST(x_mobile_purchases AS DOUBLE),
-    CAST(xpre_mobile_purchases AS DOUBLE) ORDER BY unit
-  ) AS mobile_purchases__cv_cov_x_c,
-  COVAR_SAMP(
-    CAST(x_mobile_purchases AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS mobile_purchases__cv_cov_x_h,
-  VARIANCE(CAST(xpre_mobile_purchases AS DOUBLE) ORDER BY unit) AS mobile_purchases__cv_cov_c_c,
+  VARIANCE(CAST(xpre_mobile_purchases AS DOUBLE)) AS mobile_purchases__cv_cov_c_c,
   COVAR_SAMP(
     CAST(xpre_mobile_purchases AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS mobile_purchases__cv_cov_c_h,
-  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS mobile_purchases__cv_cov_h_h,
+  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS mobile_purchases__cv_cov_h_h,
   COUNT(CAST(x_click_through AS DOUBLE)) AS click_through__cv_n,
-  AVG(CAST(x_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_mean_x,
-  AVG(CAST(y_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_mean_y,
-  AVG(CAST(xpre_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_mean_xpre,
-  AVG(CAST(ypre_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_mean_ypre,
-  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS click_through__cv_mean_h,
-  VARIANCE(CAST(x_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_cov_x_x,
-  COVAR_SAMP(CAST(x_click_through AS DOUBLE), CAST(y_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_cov_x_y,
-  COVAR_SAMP(CAST(x_click_through AS DOUBLE), CAST(xpre_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_cov_x_xpre,
-  COVAR_SAMP(CAST(x_click_through AS DOUBLE), CAST(ypre_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_cov_x_ypre,
+  AVG(CAST(x_click_through AS DOUBLE)) AS click_through__cv_mean_x,
+  AVG(CAST(y_click_through AS DOUBLE)) AS click_through__cv_mean_y,
+  AVG(CAST(xpre_click_through AS DOUBLE)) AS click_through__cv_mean_xpre,
+  AVG(CAST(ypre_click_through AS DOUBLE)) AS click_through__cv_mean_ypre,
+  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS click_through__cv_mean_h,
+  VARIANCE(CAST(x_click_through AS DOUBLE)) AS click_through__cv_cov_x_x,
+  COVAR_SAMP(CAST(x_click_through AS DOUBLE), CAST(y_click_through AS DOUBLE)) AS click_through__cv_cov_x_y,
+  COVAR_SAMP(CAST(x_click_through AS DOUBLE), CAST(xpre_click_through AS DOUBLE)) AS click_through__cv_cov_x_xpre,
+  COVAR_SAMP(CAST(x_click_through AS DOUBLE), CAST(ypre_click_through AS DOUBLE)) AS click_through__cv_cov_x_ypre,
   COVAR_SAMP(
     CAST(x_click_through AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS click_through__cv_cov_x_h,
-  VARIANCE(CAST(y_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_cov_y_y,
-  COVAR_SAMP(CAST(y_click_through AS DOUBLE), CAST(xpre_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_cov_y_xpre,
-  COVAR_SAMP(CAST(y_click_through AS DOUBLE), CAST(ypre_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_cov_y_ypre,
+  VARIANCE(CAST(y_click_through AS DOUBLE)) AS click_through__cv_cov_y_y,
+  COVAR_SAMP(CAST(y_click_through AS DOUBLE), CAST(xpre_click_through AS DOUBLE)) AS click_through__cv_cov_y_xpre,
+  COVAR_SAMP(CAST(y_click_through AS DOUBLE), CAST(ypre_click_through AS DOUBLE)) AS click_through__cv_cov_y_ypre,
   COVAR_SAMP(
     CAST(y_click_through AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS click_through__cv_cov_y_h,
-  VARIANCE(CAST(xpre_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_cov_xpre_xpre,
+  VARIANCE(CAST(xpre_click_through AS DOUBLE)) AS click_through__cv_cov_xpre_xpre,
+  COVAR_SAMP(CAST(xpre_click_through AS DOUBLE), CAST(ypre_click_through AS DOUBLE)) AS click_through__cv_cov_xpre_ypre,
   COVAR_SAMP(
     CAST(xpre_click_through AS DOUBLE),
-    CAST(ypre_click_through AS DOUBLE) ORDER BY unit
-  ) AS click_through__cv_cov_xpre_ypre,
-  COVAR_SAMP(
-    CAST(xpre_click_through AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS click_through__cv_cov_xpre_h,
-  VARIANCE(CAST(ypre_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_cov_ypre_ypre,
+  VARIANCE(CAST(ypre_click_through AS DOUBLE)) AS click_through__cv_cov_ypre_ypre,
   COVAR_SAMP(
     CAST(ypre_click_through AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS click_through__cv_cov_ypre_h,
-  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS click_through__cv_cov_h_h,
+  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS click_through__cv_cov_h_h,
   COUNT(CAST(x_session_success AS DOUBLE)) AS session_success__cv_n,
-  AVG(CAST(x_session_success AS DOUBLE) ORDER BY unit) AS session_success__cv_mean_x,
-  AVG(CAST(y_session_success AS DOUBLE) ORDER BY unit) AS session_success__cv_mean_y,
-  AVG(CAST(xpre_session_success AS DOUBLE) ORDER BY unit) AS session_success__cv_mean_xpre,
-  AVG(CAST(ypre_session_success AS DOUBLE) ORDER BY unit) AS session_success__cv_mean_ypre,
-  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS session_success__cv_mean_h,
-  VARIANCE(CAST(x_session_success AS DOUBLE) ORDER BY unit) AS session_success__cv_cov_x_x,
-  COVAR_SAMP(CAST(x_session_success AS DOUBLE), CAST(y_session_success AS DOUBLE) ORDER BY unit) AS session_success__cv_cov_x_y,
+  AVG(CAST(x_session_success AS DOUBLE)) AS session_success__cv_mean_x,
+  AVG(CAST(y_session_success AS DOUBLE)) AS session_success__cv_mean_y,
+  AVG(CAST(xpre_session_success AS DOUBLE)) AS session_success__cv_mean_xpre,
+  AVG(CAST(ypre_session_success AS DOUBLE)) AS session_success__cv_mean_ypre,
+  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS session_success__cv_mean_h,
+  VARIANCE(CAST(x_session_success AS DOUBLE)) AS session_success__cv_cov_x_x,
+  COVAR_SAMP(CAST(x_session_success AS DOUBLE), CAST(y_session_success AS DOUBLE)) AS session_success__cv_cov_x_y,
+  COVAR_SAMP(CAST(x_session_success AS DOUBLE), CAST(xpre_session_success AS DOUBLE)) AS session_success__cv_cov_x_xpre,
+  COVAR_SAMP(CAST(x_session_success AS DOUBLE), CAST(ypre_session_success AS DOUBLE)) AS session_success__cv_cov_x_ypre,
   COVAR_SAMP(
     CAST(x_session_success AS DOUBLE),
-    CAST(xpre_session_success AS DOUBLE) ORDER BY unit
-  ) AS session_success__cv_cov_x_xpre,
-  COVAR_SAMP(
-    CAST(x_session_success AS DOUBLE),
-    CAST(ypre_session_success AS DOUBLE) ORDER BY unit
-  ) AS session_success__cv_cov_x_ypre,
-  COVAR_SAMP(
-    CAST(x_session_success AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS session_success__cv_cov_x_h,
-  VARIANCE(CAST(y_session_success AS DOUBLE) ORDER BY unit) AS session_success__cv_cov_y_y,
+  VARIANCE(CAST(y_session_success AS DOUBLE)) AS session_success__cv_cov_y_y,
+  COVAR_SAMP(CAST(y_session_success AS DOUBLE), CAST(xpre_session_success AS DOUBLE)) AS session_success__cv_cov_y_xpre,
+  COVAR_SAMP(CAST(y_session_success AS DOUBLE), CAST(ypre_session_success AS DOUBLE)) AS session_success__cv_cov_y_ypre,
   COVAR_SAMP(
     CAST(y_session_success AS DOUBLE),
-    CAST(xpre_session_success AS DOUBLE) ORDER BY unit
-  ) AS session_success__cv_cov_y_xpre,
-  COVAR_SAMP(
-    CAST(y_session_success AS DOUBLE),
-    CAST(ypre_session_success AS DOUBLE) ORDER BY unit
-  ) AS session_success__cv_cov_y_ypre,
-  COVAR_SAMP(
-    CAST(y_session_success AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS session_success__cv_cov_y_h,
-  VARIANCE(CAST(xpre_session_success AS DOUBLE) ORDER BY unit) AS session_success__cv_cov_xpre_xpre,
+  VARIANCE(CAST(xpre_session_success AS DOUBLE)) AS session_success__cv_cov_xpre_xpre,
+  COVAR_SAMP(CAST(xpre_session_success AS DOUBLE), CAST(ypre_session_success AS DOUBLE)) AS session_success__cv_cov_xpre_ypre,
   COVAR_SAMP(
     CAST(xpre_session_success AS DOUBLE),
-    CAST(ypre_session_success AS DOUBLE) ORDER BY unit
-  ) AS session_success__cv_cov_xpre_ypre,
-  COVAR_SAMP(
-    CAST(xpre_session_success AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS session_success__cv_cov_xpre_h,
-  VARIANCE(CAST(ypre_session_success AS DOUBLE) ORDER BY unit) AS session_success__cv_cov_ypre_ypre,
+  VARIANCE(CAST(ypre_session_success AS DOUBLE)) AS session_success__cv_cov_ypre_ypre,
   COVAR_SAMP(
     CAST(ypre_session_success AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS session_success__cv_cov_ypre_h,
-  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS session_success__cv_cov_h_h,
+  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS session_success__cv_cov_h_h,
   COUNT(CAST(x_net_value AS DOUBLE)) AS net_value__cv_n,
-  AVG(CAST(x_net_value AS DOUBLE) ORDER BY unit) AS net_value__cv_mean_x,
-  AVG(CAST(xpre_net_value AS DOUBLE) ORDER BY unit) AS net_value__cv_mean_c,
-  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS net_value__cv_mean_h,
-  VARIANCE(CAST(x_net_value AS DOUBLE) ORDER BY unit) AS net_value__cv_cov_x_x,
-  COVAR_SAMP(CAST(x_net_value AS DOUBLE), CAST(xpre_net_value AS DOUBLE) ORDER BY unit) AS net_value__cv_cov_x_c,
-  COVAR_SAMP(
-    CAST(x_net_value AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
-  ) AS net_value__cv_cov_x_h,
-  VARIANCE(CAST(xpre_net_value AS DOUBLE) ORDER BY unit) AS net_value__cv_cov_c_c,
+  AVG(CAST(x_net_value AS DOUBLE)) AS net_value__cv_mean_x,
+  AVG(CAST(xpre_net_value AS DOUBLE)) AS net_value__cv_mean_c,
+  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS net_value__cv_mean_h,
+  VARIANCE(CAST(x_net_value AS DOUBLE)) AS net_value__cv_cov_x_x,
+  COVAR_SAMP(CAST(x_net_value AS DOUBLE), CAST(xpre_net_value AS DOUBLE)) AS net_value__cv_cov_x_c,
+  COVAR_SAMP(CAST(x_net_value AS DOUBLE), CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS net_value__cv_cov_x_h,
+  VARIANCE(CAST(xpre_net_value AS DOUBLE)) AS net_value__cv_cov_c_c,
   COVAR_SAMP(
     CAST(xpre_net_value AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS net_value__cv_cov_c_h,
-  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS net_value__cv_cov_h_h,
+  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS net_value__cv_cov_h_h,
   COUNT(
     CAST(CASE
       WHEN x_revenue_winsorised > caps.revenue_winsorised__cap
@@ -1018,22 +972,22 @@ SELECT
       WHEN x_revenue_winsorised > caps.revenue_winsorised__cap
       THEN caps.revenue_winsorised__cap
       ELSE x_revenue_winsorised
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS revenue_winsorised__cv_mean_x,
   AVG(
     CAST(CASE
       WHEN xpre_revenue_winsorised > caps.revenue_winsorised__cap_pre
       THEN caps.revenue_winsorised__cap_pre
       ELSE xpre_revenue_winsorised
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS revenue_winsorised__cv_mean_c,
-  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS revenue_winsorised__cv_mean_h,
+  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS revenue_winsorised__cv_mean_h,
   VARIANCE(
     CAST(CASE
       WHEN x_revenue_winsorised > caps.revenue_winsorised__cap
       THEN caps.revenue_winsorised__cap
       ELSE x_revenue_winsorised
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS revenue_winsorised__cv_cov_x_x,
   COVAR_SAMP(
     CAST(CASE
@@ -1045,7 +999,7 @@ SELECT
       WHEN xpre_revenue_winsorised > caps.revenue_winsorised__cap_pre
       THEN caps.revenue_winsorised__cap_pre
       ELSE xpre_revenue_winsorised
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS revenue_winsorised__cv_cov_x_c,
   COVAR_SAMP(
     CAST(CASE
@@ -1053,14 +1007,14 @@ SELECT
       THEN caps.revenue_winsorised__cap
       ELSE x_revenue_winsorised
     END AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS revenue_winsorised__cv_cov_x_h,
   VARIANCE(
     CAST(CASE
       WHEN xpre_revenue_winsorised > caps.revenue_winsorised__cap_pre
       THEN caps.revenue_winsorised__cap_pre
       ELSE xpre_revenue_winsorised
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS revenue_winsorised__cv_cov_c_c,
   COVAR_SAMP(
     CAST(CASE
@@ -1068,9 +1022,9 @@ SELECT
       THEN caps.revenue_winsorised__cap_pre
       ELSE xpre_revenue_winsorised
     END AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS revenue_winsorised__cv_cov_c_h,
-  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS revenue_winsorised__cv_cov_h_h
+  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS revenue_winsorised__cv_cov_h_h
 FROM unit_rows
 CROSS JOIN caps
 WHERE
