@@ -4,7 +4,7 @@ A run is ONE scan of the events, materialised as one row per exposed unit (the t
 ``unit_rows``), followed by small result queries over that table. The unit query's
 stages (CTEs):
   first_exposure  each unit's first exposure inside the experiment, its variant and
-                  how many distinct variants it saw
+                  whether it saw two variants or more
   sessions        events joined to first exposures (inside the analysis window),
                   grouped once per (unit, session): every metric's session-level part,
                   the bot rules' inputs and, for dwell metrics, click/back time lists
@@ -136,7 +136,9 @@ class _Builder:
             exp.alias_(_col("unit_id", x), "unit"),
             exp.alias_(exp.Min(this=ts.copy()), "first_ts"),
             exp.alias_(chosen.else_(exp.Min(this=variant.copy())), "variant"),
-            exp.alias_(exp.Count(this=exp.Distinct(expressions=[variant.copy()])), "n_variants"),
+            # seen in two variants or more: a MIN/MAX pair, not a DISTINCT count (which DuckDB
+            # runs as a grouping and a join of its own)
+            exp.alias_(exp.Min(this=variant.copy()) < exp.Max(this=variant.copy()), "two_variants"),
             exp.alias_(exp.cast(repeats, BIGINT), DUPLICATE_EXPOSURES),
         )
         if self.spec.stitch_to:
@@ -154,7 +156,7 @@ class _Builder:
         variant count, first exposure, repeated exposure rows). The facts depend on the unit
         alone, so they join the 1-per-unit rollup instead of riding through both groupings."""
         u, f = "u", "f"
-        facts = ("variant", "n_variants", "first_ts", DUPLICATE_EXPOSURES)
+        facts = ("variant", "two_variants", "first_ts", DUPLICATE_EXPOSURES)
         rollup = exp.alias_(exp.Subquery(this=self._rollup()), u, table=True)
         return (
             exp.select(
@@ -287,7 +289,7 @@ class _Builder:
             elif rule.kind is RuleKind.DENY_UNIT:
                 flags.append(_col("unit").isin(*[_lit(t) for t in rule.tokens]))
         is_bot = exp.paren(exp.or_(*flags)) if flags else exp.false()
-        two_variants = _col("n_variants") > _lit(1)
+        two_variants = _col("two_variants")
         excluded = two_variants if self.spec.two_variant_units is TwoVariantPolicy.EXCLUDE else None
         select = exp.select(
             _col("unit"),
@@ -295,7 +297,7 @@ class _Builder:
             _col("n_events"),
             exp.alias_(is_bot, "is_bot"),
             exp.alias_(excluded.copy() if excluded is not None else exp.false(), "contaminated"),
-            exp.alias_(two_variants, "two_variants"),
+            two_variants.copy(),
             _col("first_ts"),
             _col(DUPLICATE_EXPOSURES),
             *[_col(column) for column in unit_columns(self.plan)],
@@ -353,7 +355,9 @@ class _Builder:
                 exp.alias_(self._agg(exp.Variance, capped_x.copy()), cols.var_x),
             )
             if cols.successes is not None:  # per-unit 0/1: an integer sum is exact
-                ones = exp.Sum(this=exp.cast(_col(x), BIGINT))
+                # BIGINT (DuckDB's SUM of BIGINT is a 128-bit integer, which the Arrow
+                # typing of results would cast, paying for Arrow's compute set-up)
+                ones = exp.cast(exp.Sum(this=exp.cast(_col(x), BIGINT)), BIGINT)
                 select = select.select(exp.alias_(ones, cols.successes))
             if metric.is_ratio:
                 y = f"y_{metric.name}"

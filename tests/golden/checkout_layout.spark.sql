@@ -11,7 +11,7 @@ WITH first_exposure AS (
       THEN 'treatment'
       ELSE MIN(x.variant)
     END AS variant,
-    COUNT(DISTINCT x.variant) AS n_variants,
+    MIN(x.variant) < MAX(x.variant) AS two_variants,
     CAST(SUM(x.n_rows) - COUNT(*) AS BIGINT) AS dq_duplicate_exposures
   FROM (
     SELECT
@@ -374,7 +374,7 @@ WITH first_exposure AS (
 ), units AS (
   SELECT
     f.variant,
-    f.n_variants,
+    f.two_variants,
     f.first_ts,
     f.dq_duplicate_exposures,
     u.*
@@ -442,8 +442,8 @@ SELECT
   (
     COALESCE(bot_rule_0, FALSE) OR max_session_events > 60
   ) AS is_bot,
-  n_variants > 1 AS contaminated,
-  n_variants > 1 AS two_variants,
+  two_variants AS contaminated,
+  two_variants,
   first_ts,
   dq_duplicate_exposures,
   dq_ignored_revenue,
@@ -563,7 +563,7 @@ SELECT
   COUNT(x_buyer_share) AS buyer_share__n,
   AVG(x_buyer_share) AS buyer_share__mean_x,
   VARIANCE(x_buyer_share) AS buyer_share__var_x,
-  SUM(CAST(x_buyer_share AS BIGINT)) AS buyer_share__successes,
+  CAST(SUM(CAST(x_buyer_share AS BIGINT)) AS BIGINT) AS buyer_share__successes,
   COUNT(x_mobile_purchases) AS mobile_purchases__n,
   AVG(x_mobile_purchases) AS mobile_purchases__mean_x,
   VARIANCE(x_mobile_purchases) AS mobile_purchases__var_x,
