@@ -17,15 +17,13 @@ import datetime as dt
 import sqlglot.expressions as exp
 
 from metricforge.compile.expressions import qualify
-from metricforge.compile.quality import usable, value_checks
+from metricforge.compile.quality import exact, value_checks
 from metricforge.compile.sqlparts import DOUBLE, timestamp
 from metricforge.compile.sqlparts import all_of as _and
 from metricforge.compile.sqlparts import case as _case
 from metricforge.compile.sqlparts import col as _col
 from metricforge.compile.sqlparts import lit as _lit
 from metricforge.spec.model import BotRule, Kind, MetricDef, Plan, RuleKind
-
-EXACT = exp.DataType.build("DECIMAL(38, 10)")
 
 
 def periods(plan: Plan, e: str = "e", f: str = "f") -> list[tuple[str, exp.Expr]]:
@@ -137,14 +135,11 @@ def _session_parts(
     if metric.kind in (Kind.SUM, Kind.MEAN):
         assert metric.value is not None
         raw = qualify(metric.value, e)
-        used = _and(cond, usable(raw))  # NaN, infinite and huge values are left out
-        # TRY_CAST: an engine may hoist the cast out of the CASE and apply it to every row
-        value = exp.TryCast(this=raw.copy(), to=EXACT.copy())
-        parts: list[exp.Expr] = [exp.alias_(exp.Sum(this=_case(used, value)), s)]
+        # the exact value, NULL when NaN, infinite or too large (left out, and counted)
+        value = _case(cond, exact(raw))
+        parts: list[exp.Expr] = [exp.alias_(exp.Sum(this=value), s)]
         if metric.kind is Kind.MEAN:
-            parts.append(
-                exp.alias_(exp.Count(this=_case(used.copy(), _lit(1))), f"c{period}_{metric.name}")
-            )
+            parts.append(exp.alias_(exp.Count(this=value.copy()), f"c{period}_{metric.name}"))
         if not period:
             parts += [
                 exp.alias_(exp.Count(this=_case(check, _lit(1))), name)

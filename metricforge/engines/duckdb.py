@@ -80,8 +80,9 @@ def hardened_connection(
         "memory_limit": memory_limit,
         "temp_directory": str(temp_dir),
         # Parquet min/max statistics leave NaN out; with them DuckDB folds `isnan(x)` to false
-        # and `abs(x) < 1e18` to true for a column holding NaN, so NaN values would slip past
-        # the checks of compile/quality.py. Values are decided row by row instead.
+        # and `abs(x) < 1e18` to true for a column holding NaN (and may take a TRY_CAST for one
+        # that cannot fail), so NaN values would slip past the checks of compile/quality.py.
+        # Values are decided row by row instead.
         "disabled_optimizers": "statistics_propagation",
     }
     if threads:

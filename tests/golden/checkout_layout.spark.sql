@@ -52,13 +52,8 @@ WITH first_exposure AS (
     ) AS bot_rule_0,
     SUM(
       CASE
-        WHEN (
-          e.event IN ('purchase') AND e.ts >= f.first_ts
-        )
-        AND (
-          ABS(CAST(e.value AS DOUBLE)) < 1e+18
-        )
-        THEN CAST(e.value AS DECIMAL(38, 10))
+        WHEN e.event IN ('purchase') AND e.ts >= f.first_ts
+        THEN CAST(e.value AS DECIMAL(28, 10))
       END
     ) AS s_revenue,
     COUNT(
@@ -69,9 +64,7 @@ WITH first_exposure AS (
         AND NOT (
           e.value
         ) IS NULL
-        AND NOT (
-          ABS(CAST(e.value AS DOUBLE)) < 1e+18
-        )
+        AND CAST(e.value AS DECIMAL(28, 10)) IS NULL
         THEN 1
       END
     ) AS dq_ignored_revenue,
@@ -80,9 +73,7 @@ WITH first_exposure AS (
         WHEN (
           e.event IN ('purchase') AND e.ts >= f.first_ts
         )
-        AND (
-          ABS(CAST(e.value AS DOUBLE)) < 1e+18
-        )
+        AND NOT CAST(e.value AS DECIMAL(28, 10)) IS NULL
         AND (
           e.value
         ) < 0
@@ -91,15 +82,10 @@ WITH first_exposure AS (
     ) AS dq_negative_revenue,
     SUM(
       CASE
-        WHEN (
-          e.event IN ('purchase') AND NOT (
-            e.ts >= f.first_ts
-          )
+        WHEN e.event IN ('purchase') AND NOT (
+          e.ts >= f.first_ts
         )
-        AND (
-          ABS(CAST(e.value AS DOUBLE)) < 1e+18
-        )
-        THEN CAST(e.value AS DECIMAL(38, 10))
+        THEN CAST(e.value AS DECIMAL(28, 10))
       END
     ) AS spre_revenue,
     COUNT(CASE WHEN e.event IN ('unsubscribe') AND e.ts >= f.first_ts THEN 1 END) AS s_unsubscribes,
@@ -108,24 +94,14 @@ WITH first_exposure AS (
     ) THEN 1 END) AS spre_unsubscribes,
     SUM(
       CASE
-        WHEN (
-          e.event IN ('page_load') AND e.ts >= f.first_ts
-        )
-        AND (
-          ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
-        )
-        THEN CAST(e.latency_ms AS DECIMAL(38, 10))
+        WHEN e.event IN ('page_load') AND e.ts >= f.first_ts
+        THEN CAST(e.latency_ms AS DECIMAL(28, 10))
       END
     ) AS s_page_latency,
     COUNT(
       CASE
-        WHEN (
-          e.event IN ('page_load') AND e.ts >= f.first_ts
-        )
-        AND (
-          ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
-        )
-        THEN 1
+        WHEN e.event IN ('page_load') AND e.ts >= f.first_ts
+        THEN CAST(e.latency_ms AS DECIMAL(28, 10))
       END
     ) AS c_page_latency,
     COUNT(
@@ -136,9 +112,7 @@ WITH first_exposure AS (
         AND NOT (
           e.latency_ms
         ) IS NULL
-        AND NOT (
-          ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
-        )
+        AND CAST(e.latency_ms AS DECIMAL(28, 10)) IS NULL
         THEN 1
       END
     ) AS dq_ignored_page_latency,
@@ -147,9 +121,7 @@ WITH first_exposure AS (
         WHEN (
           e.event IN ('page_load') AND e.ts >= f.first_ts
         )
-        AND (
-          ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
-        )
+        AND NOT CAST(e.latency_ms AS DECIMAL(28, 10)) IS NULL
         AND (
           e.latency_ms
         ) < 0
@@ -158,28 +130,18 @@ WITH first_exposure AS (
     ) AS dq_negative_page_latency,
     SUM(
       CASE
-        WHEN (
-          e.event IN ('page_load') AND NOT (
-            e.ts >= f.first_ts
-          )
+        WHEN e.event IN ('page_load') AND NOT (
+          e.ts >= f.first_ts
         )
-        AND (
-          ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
-        )
-        THEN CAST(e.latency_ms AS DECIMAL(38, 10))
+        THEN CAST(e.latency_ms AS DECIMAL(28, 10))
       END
     ) AS spre_page_latency,
     COUNT(
       CASE
-        WHEN (
-          e.event IN ('page_load') AND NOT (
-            e.ts >= f.first_ts
-          )
+        WHEN e.event IN ('page_load') AND NOT (
+          e.ts >= f.first_ts
         )
-        AND (
-          ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
-        )
-        THEN 1
+        THEN CAST(e.latency_ms AS DECIMAL(28, 10))
       END
     ) AS cpre_page_latency,
     COUNT(
@@ -307,13 +269,8 @@ WITH first_exposure AS (
     END AS spre_session_success,
     SUM(
       CASE
-        WHEN (
-          e.event IN ('purchase') AND e.ts >= f.first_ts
-        )
-        AND (
-          ABS(CAST(e.value AS DOUBLE)) < 1e+18
-        )
-        THEN CAST(e.value AS DECIMAL(38, 10))
+        WHEN e.event IN ('purchase') AND e.ts >= f.first_ts
+        THEN CAST(e.value AS DECIMAL(28, 10))
       END
     ) AS s_revenue_winsorised,
     COUNT(
@@ -324,9 +281,7 @@ WITH first_exposure AS (
         AND NOT (
           e.value
         ) IS NULL
-        AND NOT (
-          ABS(CAST(e.value AS DOUBLE)) < 1e+18
-        )
+        AND CAST(e.value AS DECIMAL(28, 10)) IS NULL
         THEN 1
       END
     ) AS dq_ignored_revenue_winsorised,
@@ -335,9 +290,7 @@ WITH first_exposure AS (
         WHEN (
           e.event IN ('purchase') AND e.ts >= f.first_ts
         )
-        AND (
-          ABS(CAST(e.value AS DOUBLE)) < 1e+18
-        )
+        AND NOT CAST(e.value AS DECIMAL(28, 10)) IS NULL
         AND (
           e.value
         ) < 0
@@ -346,15 +299,10 @@ WITH first_exposure AS (
     ) AS dq_negative_revenue_winsorised,
     SUM(
       CASE
-        WHEN (
-          e.event IN ('purchase') AND NOT (
-            e.ts >= f.first_ts
-          )
+        WHEN e.event IN ('purchase') AND NOT (
+          e.ts >= f.first_ts
         )
-        AND (
-          ABS(CAST(e.value AS DOUBLE)) < 1e+18
-        )
-        THEN CAST(e.value AS DECIMAL(38, 10))
+        THEN CAST(e.value AS DECIMAL(28, 10))
       END
     ) AS spre_revenue_winsorised
   FROM first_exposure AS f
