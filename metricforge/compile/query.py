@@ -88,8 +88,9 @@ def result_columns(metric: MetricDef) -> MetricColumns:
 
 
 class _Builder:
-    def __init__(self, plan: Plan, dialect: str) -> None:
+    def __init__(self, plan: Plan, dialect: str, ts_bounds: bool = True) -> None:
         self.plan = plan
+        self.ts_bounds = ts_bounds
         self.spec = plan.spec
         self.dialect = dialect
         # Aggregates ordered by unit where the engine's float sums depend on row order: in
@@ -378,7 +379,7 @@ class _Builder:
         query = self.classified()
         stages = [
             ("first_exposure", self.first_exposure()),
-            ("sessions", sessions(self.plan)),
+            ("sessions", sessions(self.plan, ts_bounds=self.ts_bounds)),
             ("units", self.units()),
         ]
         if self.spec.stitch_to:
@@ -427,9 +428,9 @@ class CompiledRun:
         return [(UNIT_TABLE, self.materialise(dialect)), *self.results]
 
 
-def compile_plan(plan: Plan, dialect: str = "duckdb") -> CompiledRun:
+def compile_plan(plan: Plan, dialect: str = "duckdb", *, ts_bounds: bool = True) -> CompiledRun:
     """The statements of a run, as sqlglot trees for ``dialect`` (duckdb or spark)."""
-    return _Builder(plan, dialect).build()
+    return _Builder(plan, dialect, ts_bounds).build()
 
 
 def render(plan: Plan, dialect: str = "duckdb", *, pretty: bool = True) -> str:

@@ -41,8 +41,12 @@ def periods(plan: Plan, e: str = "e", f: str = "f") -> list[tuple[str, exp.Expr]
     return out
 
 
-def sessions(plan: Plan) -> exp.Select:
-    """The CTE ``sessions``: one row per (unit, session) of each unit's window."""
+def sessions(plan: Plan, *, ts_bounds: bool = True) -> exp.Select:
+    """The CTE ``sessions``: one row per (unit, session) of each unit's window.
+
+    With ``ts_bounds`` the join also bounds ``ts`` by constants ([start − pre-period, end +
+    window)): implied by each unit's window, but a constant the engine can push into the scan
+    to skip row groups. The runner leaves it out when every file read lies inside it."""
     spec = plan.spec
     e, f = "e", "f"
     window = exp.Interval(this=_lit(str(spec.window_days)), unit=exp.var("DAY"))
@@ -56,8 +60,8 @@ def sessions(plan: Plan) -> exp.Select:
         _col(spec.unit, e).eq(_col("unit", f)),
         _col("ts", e) >= first,
         _col("ts", e) < exp.Add(this=_col("first_ts", f), expression=window),
-        _col("ts", e) >= timestamp(spec.start - dt.timedelta(days=pre)),
-        _col("ts", e) < timestamp(last),
+        _col("ts", e) >= timestamp(spec.start - dt.timedelta(days=pre)) if ts_bounds else None,
+        _col("ts", e) < timestamp(last) if ts_bounds else None,
     )
     # With a pre-period, every experiment-period part is limited to events at or after
     # the first exposure, and each metric gets a twin per earlier period (`pre`, and for
