@@ -171,7 +171,9 @@ def _dwell_success(metric: MetricDef, e: str, period_cond: exp.Expr | None) -> e
 
     def times(event: str) -> tuple[exp.Expr, exp.Expr]:
         cond = _and(
-            _col("event", e).eq(_lit(event)),
+            # IN, as a count metric's event condition: the engine then computes a count of
+            # clicks that a metric also uses once (identical aggregates are shared)
+            _col("event", e).isin(_lit(event)),
             where.copy() if where is not None else None,
             period_cond.copy() if period_cond is not None else None,
         )

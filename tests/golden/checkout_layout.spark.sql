@@ -214,18 +214,18 @@ WITH first_exposure AS (
       e.ts >= f.first_ts
     ) THEN 1 END) AS spre_impressions,
     CASE
-      WHEN COUNT(CASE WHEN e.event = 'click' AND e.ts >= f.first_ts THEN 1 END) = 0
+      WHEN COUNT(CASE WHEN e.event IN ('click') AND e.ts >= f.first_ts THEN 1 END) = 0
       THEN 0
-      WHEN COUNT(CASE WHEN e.event = 'back' AND e.ts >= f.first_ts THEN 1 END) = 0
+      WHEN COUNT(CASE WHEN e.event IN ('back') AND e.ts >= f.first_ts THEN 1 END) = 0
       THEN 1
       WHEN SIZE(
         FILTER(
           COLLECT_LIST(UNIX_MILLIS(e.ts)) FILTER(WHERE
-            e.event = 'click' AND e.ts >= f.first_ts),
+            e.event IN ('click') AND e.ts >= f.first_ts),
           c -> SIZE(
             FILTER(
               COLLECT_LIST(UNIX_MILLIS(e.ts)) FILTER(WHERE
-                e.event = 'back' AND e.ts >= f.first_ts),
+                e.event IN ('back') AND e.ts >= f.first_ts),
               b -> b > c AND b <= (
                 c + 30000
               )
@@ -237,24 +237,24 @@ WITH first_exposure AS (
       ELSE 0
     END AS s_session_success,
     CASE
-      WHEN COUNT(CASE WHEN e.event = 'click' AND NOT (
+      WHEN COUNT(CASE WHEN e.event IN ('click') AND NOT (
         e.ts >= f.first_ts
       ) THEN 1 END) = 0
       THEN 0
-      WHEN COUNT(CASE WHEN e.event = 'back' AND NOT (
+      WHEN COUNT(CASE WHEN e.event IN ('back') AND NOT (
         e.ts >= f.first_ts
       ) THEN 1 END) = 0
       THEN 1
       WHEN SIZE(
         FILTER(
           COLLECT_LIST(UNIX_MILLIS(e.ts)) FILTER(WHERE
-            e.event = 'click' AND NOT (
+            e.event IN ('click') AND NOT (
               e.ts >= f.first_ts
             )),
           c -> SIZE(
             FILTER(
               COLLECT_LIST(UNIX_MILLIS(e.ts)) FILTER(WHERE
-                e.event = 'back' AND NOT (
+                e.event IN ('back') AND NOT (
                   e.ts >= f.first_ts
                 )),
               b -> b > c AND b <= (
