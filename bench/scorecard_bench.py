@@ -293,6 +293,15 @@ def main(argv: list[str] | None = None) -> None:
         raise SystemExit(f"--only must name a and any of {sorted(LABELS)}; got {unknown}")
     size = bench_data.parse_size(args.events)
     print(f"data: {args.data} (about {size:,} events)", flush=True)
+    # Generated in a child process: the contenders are forked from this one, and a fork
+    # starts with its parent's resident memory, which wait4 would report as theirs.
+    code = (
+        "import sys, pathlib, bench_data;"
+        " bench_data.ensure(pathlib.Path(sys.argv[1]), int(sys.argv[2]), sys.argv[3])"
+    )
+    subprocess.run(
+        [sys.executable, "-c", code, str(args.data), str(size), args.events], cwd=HERE, check=True
+    )
     data = bench_data.ensure(args.data, size, args.events)
     work = Path(tempfile.mkdtemp(prefix="metricforge-bench-run-"))
     try:
