@@ -3,14 +3,18 @@
 -- analyst who knows DuckDB would: one scan of the events (pruned by the hive `date`
 -- partition), one grouping per (unit, session) that also collects each session's click and
 -- back times, one per-unit rollup, then per-variant moments straight away (no stored
--- per-unit table, no ordered aggregates, DOUBLE sums). The runner sets the variables
--- `events` (a glob of the hive-partitioned event files) and `exposures`.
+-- per-unit table, no ordered aggregates, DOUBLE sums). Measured choices (bench/RESULTS.md):
+-- conditional aggregates as CASE inside the aggregate (faster in DuckDB than FILTER, which
+-- only the list aggregates keep), the variant joined to the 1-per-unit rollup instead of
+-- carried through both groupings, and two-variant units by MIN < MAX rather than a
+-- DISTINCT count. The runner sets the variables `events` (a glob of the hive-partitioned
+-- event files) and `exposures`.
 WITH first_exposure AS (
     SELECT
         unit_id AS unit,
         min(ts) AS first_ts,
         min(variant) AS variant,
-        count(DISTINCT variant) > 1 AS contaminated
+        min(variant) < max(variant) AS contaminated
     FROM read_parquet(getvariable('exposures'))
     WHERE experiment = 'checkout_layout'
       AND unit_id IS NOT NULL AND variant IS NOT NULL
@@ -20,24 +24,22 @@ WITH first_exposure AS (
 sessions AS (
     SELECT
         f.unit,
-        any_value(f.variant) AS variant,
-        any_value(f.contaminated) AS contaminated,
         e.session_id,
         count(e.ts) AS n_events,
         bool_or(
             contains(lower(e.user_agent), 'bot') OR contains(lower(e.user_agent), 'crawler')
             OR contains(lower(e.user_agent), 'spider') OR contains(lower(e.user_agent), 'headless')
         ) AS ua_bot,
-        sum(e.value) FILTER (WHERE e.event = 'purchase') AS revenue,
-        count(*) FILTER (WHERE e.event = 'unsubscribe') AS unsubscribes,
-        sum(e.latency_ms) FILTER (WHERE e.event = 'page_load') AS latency_sum,
-        count(e.latency_ms) FILTER (WHERE e.event = 'page_load') AS latency_n,
-        count(*) FILTER (WHERE e.event = 'purchase') AS purchases,
-        count(*) FILTER (WHERE e.event = 'refund') AS refunds,
-        count(*) FILTER (WHERE e.event = 'purchase' AND e.device = 'mobile') AS mobile_purchases,
-        count(*) FILTER (WHERE e.event = 'click') AS clicks,
-        count(*) FILTER (WHERE e.event = 'impression') AS impressions,
-        count(*) FILTER (WHERE e.event = 'back') AS backs,
+        sum(CASE WHEN e.event = 'purchase' THEN e.value END) AS revenue,
+        count(CASE WHEN e.event = 'unsubscribe' THEN 1 END) AS unsubscribes,
+        sum(CASE WHEN e.event = 'page_load' THEN e.latency_ms END) AS latency_sum,
+        count(CASE WHEN e.event = 'page_load' THEN e.latency_ms END) AS latency_n,
+        count(CASE WHEN e.event = 'purchase' THEN 1 END) AS purchases,
+        count(CASE WHEN e.event = 'refund' THEN 1 END) AS refunds,
+        count(CASE WHEN e.event = 'purchase' AND e.device = 'mobile' THEN 1 END) AS mobile_purchases,
+        count(CASE WHEN e.event = 'click' THEN 1 END) AS clicks,
+        count(CASE WHEN e.event = 'impression' THEN 1 END) AS impressions,
+        count(CASE WHEN e.event = 'back' THEN 1 END) AS backs,
         list(epoch_ms(e.ts)) FILTER (WHERE e.event = 'click') AS click_ms,
         list(epoch_ms(e.ts)) FILTER (WHERE e.event = 'back') AS back_ms
     FROM first_exposure AS f
@@ -48,10 +50,10 @@ sessions AS (
     GROUP BY f.unit, e.session_id
 ),
 units AS (
-    SELECT
+    SELECT f.variant, f.contaminated, u.*
+    FROM (
+      SELECT
         unit,
-        any_value(variant) AS variant,
-        any_value(contaminated) AS contaminated,
         sum(n_events) AS n_events,
         bool_or(ua_bot) OR max(n_events) > 60 AS is_bot,
         coalesce(sum(revenue), 0) AS revenue,
@@ -73,8 +75,10 @@ units AS (
             END
         )::DOUBLE AS good_sessions,
         count(session_id)::DOUBLE AS n_sessions
-    FROM sessions
-    GROUP BY unit
+      FROM sessions
+      GROUP BY unit
+    ) AS u
+    JOIN first_exposure AS f ON f.unit = u.unit
 )
 SELECT
     variant, is_bot, contaminated,

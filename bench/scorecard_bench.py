@@ -150,6 +150,15 @@ def _moments(row: dict[str, Any], metric: str) -> Any:
     return Moments.of_mean(n, float(row[f"{metric}__mean_x"]), float(row[f"{metric}__var_x"]))
 
 
+def _hypothesis(row: dict[str, Any]) -> dict[str, Any]:
+    """The scorecard row's test as arguments of ``compare``: two-sided, or one-sided for a
+    guardrail ("... higher is worse": side 1) with its non-inferiority margin if any."""
+    text = str(row.get("hypothesis") or "")
+    if not text.startswith(("one-sided", "non-inferiority")):
+        return {}
+    return {"side": 1 if "higher is worse" in text else -1, "margin": row.get("margin")}
+
+
 def compare_contender(
     tool: dict[str, Any], rows: list[dict[str, Any]]
 ) -> list[tuple[str, Any, Any]]:
@@ -175,7 +184,7 @@ def compare_contender(
             continue
         treatment = _moments(clean[row["variant"]], name)
         control = _moments(clean[row["control"]], name)
-        effect = compare(treatment, control, alpha=row["alpha"])
+        effect = compare(treatment, control, alpha=row["alpha"], **_hypothesis(row))
         fields = ["value", "control_value", "abs_effect"]
         if row.get("method") == effect.method:
             fields += ["abs_ci_low", "abs_ci_high", "rel_effect", "rel_ci_low", "rel_ci_high"]
@@ -284,6 +293,15 @@ def main(argv: list[str] | None = None) -> None:
         raise SystemExit(f"--only must name a and any of {sorted(LABELS)}; got {unknown}")
     size = bench_data.parse_size(args.events)
     print(f"data: {args.data} (about {size:,} events)", flush=True)
+    # Generated in a child process: the contenders are forked from this one, and a fork
+    # starts with its parent's resident memory, which wait4 would report as theirs.
+    code = (
+        "import sys, pathlib, bench_data;"
+        " bench_data.ensure(pathlib.Path(sys.argv[1]), int(sys.argv[2]), sys.argv[3])"
+    )
+    subprocess.run(
+        [sys.executable, "-c", code, str(args.data), str(size), args.events], cwd=HERE, check=True
+    )
     data = bench_data.ensure(args.data, size, args.events)
     work = Path(tempfile.mkdtemp(prefix="metricforge-bench-run-"))
     try:

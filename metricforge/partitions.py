@@ -14,6 +14,7 @@ trusted and every file is read. Files outside any ``date=`` folder are always re
 from __future__ import annotations
 
 import datetime as dt
+import functools
 import re
 from collections.abc import Sequence
 from pathlib import Path
@@ -61,6 +62,12 @@ def _in_window(day: dt.date | None, first: dt.datetime, last: dt.datetime) -> bo
 
 def _ts_range(path: Path) -> tuple[dt.datetime, dt.datetime] | None:
     """Min and max of ``ts`` over the file's row groups, from the footer; None if unknown."""
+    info = path.stat()
+    return _ts_range_of(path, info.st_mtime_ns, info.st_size)
+
+
+@functools.lru_cache(maxsize=4096)
+def _ts_range_of(path: Path, mtime_ns: int, size: int) -> tuple[dt.datetime, dt.datetime] | None:
     meta = pq.read_metadata(path)
     names = [meta.schema.column(i).name for i in range(meta.num_columns)]
     if "ts" not in names:
@@ -87,6 +94,17 @@ def _naive_utc(value: dt.datetime) -> dt.datetime:
 def _keeps_contract(path: Path, day: dt.date) -> bool:
     found = _ts_range(path)
     return found is None or (found[0] >= _midnight(day) and found[1] < _midnight(day) + ONE_DAY)
+
+
+def inside_window(files: Sequence[Path], first: dt.datetime, last: dt.datetime) -> bool:
+    """Whether every file's ``ts`` range (from its footer) lies in [first, last). Then a
+    bound on ``ts`` in the scan cannot leave out a row, and would only cost a comparison per
+    row (the analysis window itself is decided per unit)."""
+    for path in files:
+        found = _ts_range(path)
+        if found is None or found[0] < first or found[1] >= last:
+            return False
+    return True
 
 
 def prune(

@@ -195,7 +195,7 @@ def estimate(
         raise SpecError("--days must be at least 1", key="--days")
     inputs, _ = gather_inputs(plan)
     compiled = compile_plan(plan, engine.dialect)
-    run = CompiledRun(compiled.unit_rows, history_results(plan, engine.dialect))
+    run = CompiledRun(compiled.unit_rows, history_results(plan))
     tables = engine.run(run, inputs)
     spec = plan.spec
     exposure_days = max(1, math.ceil((spec.end - spec.start).total_seconds() / 86400))

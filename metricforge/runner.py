@@ -15,7 +15,7 @@ from metricforge.compile.query import compile_plan, result_columns
 from metricforge.engines.base import Engine, EngineInputs
 from metricforge.errors import InputDataError
 from metricforge.inputs import InputFile, check_columns, fingerprint, inspect, parquet_files
-from metricforge.partitions import event_window, exposure_window, prune
+from metricforge.partitions import event_window, exposure_window, inside_window, prune
 from metricforge.provenance import Stamp, make_stamp
 from metricforge.quality import summarise
 from metricforge.schema import EVENT_COLUMNS, EXPOSURE_COLUMNS
@@ -94,7 +94,10 @@ def _f(value: object) -> float:
 def execute(plan: Plan, engine: Engine) -> RunData:
     engine_inputs, files = gather_inputs(plan)
     stamp = make_stamp(plan, fingerprint(files), engine.name, engine.version())
-    tables = engine.run(compile_plan(plan, engine.dialect), engine_inputs)
+    # A scan bound on ts lets the engine skip row groups outside the window; when every
+    # file read lies inside it (e.g. day partitions), the bound could skip nothing.
+    bounded = not inside_window(engine_inputs.events, *event_window(plan))
+    tables = engine.run(compile_plan(plan, engine.dialect, ts_bounds=bounded), engine_inputs)
     data = reshape(plan, stamp, files, tables["moments"])
     data.tables = tables
     data.extras = read_extras(plan, tables)

@@ -18,12 +18,12 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from metricforge.compile.query import compile_plan
+from metricforge.compile.query import CompiledRun, compile_plan
 from metricforge.engines.base import EngineInputs
 from metricforge.engines.duckdb import DuckDBEngine, _register_views, hardened_connection
 from metricforge.errors import InputDataError
 from metricforge.inputs import parquet_files
-from metricforge.partitions import partition_day, prune
+from metricforge.partitions import event_window, inside_window, partition_day, prune
 from metricforge.runner import gather_inputs
 from metricforge.sample import EVENT_SCHEMA
 from metricforge.spec import load_plan
@@ -168,3 +168,30 @@ def test_no_partition_in_the_window_is_one_clear_error(tmp_path: Path) -> None:
         prune([early], *WINDOW, folder=tmp_path)
     assert "no date= partition between 2026-09-15 and 2026-09-19" in err.value.one_line()
     assert str(tmp_path) in err.value.one_line()
+
+
+def test_inside_window_reads_each_files_ts_range(tmp_path: Path) -> None:
+    inside = _write_day(tmp_path, "date=2026-09-16", dt.datetime(2026, 9, 16, 7))
+    early = _write_day(tmp_path, "date=2026-09-10", dt.datetime(2026, 9, 10, 7))
+    assert inside_window([inside], *WINDOW)
+    assert not inside_window([inside, early], *WINDOW)
+
+
+def test_scan_bound_on_ts_only_where_it_can_skip_rows(plan: Plan) -> None:
+    """The constant bounds on ts are implied by each unit's window: left out when every file
+    read lies inside it (the day partitions of the window), with the same results."""
+    pruned, _ = gather_inputs(plan)
+    assert inside_window(pruned.events, *event_window(plan))
+    everything = dataclasses.replace(pruned, events=parquet_files(SAMPLE / "events"))
+    assert not inside_window(everything.events, *event_window(plan))
+
+    def bounds(compiled: CompiledRun) -> list[str]:
+        sql = compiled.unit_rows.sql(dialect="duckdb")
+        return [c for c in ("e.ts >= CAST('2026-09-15", "e.ts < CAST('2026-10-13") if c in sql]
+
+    bounded, unbounded = compile_plan(plan), compile_plan(plan, ts_bounds=False)
+    assert len(bounds(bounded)) == 2 and bounds(unbounded) == []
+    engine = DuckDBEngine()
+    reference = engine.run(bounded, everything)["moments"]
+    assert engine.run(unbounded, pruned)["moments"].equals(reference)
+    assert engine.run(bounded, pruned)["moments"].equals(reference)

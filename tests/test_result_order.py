@@ -8,12 +8,15 @@ bit for bit, and must not depend on the number of threads.
 
 from __future__ import annotations
 
+import dataclasses
+
 import duckdb
 import numpy as np
 import pyarrow as pa
 import pytest
 import sqlglot.expressions as exp
 
+from metricforge.compile.history import history_results
 from metricforge.compile.query import CompiledRun, compile_plan
 from metricforge.compile.sqlparts import UNIT_TABLE
 from metricforge.engines.base import arrow_result
@@ -24,6 +27,7 @@ from metricforge.spec import load_plan
 from tests.conftest import PIPELINES
 
 ORDER_SENSITIVE = (exp.Avg, exp.Variance, exp.CovarSamp)
+CHECKOUT = PIPELINES / "checkout_layout.toml"  # winsorised, CUPED and quantile metrics
 Demo = tuple[CompiledRun, pa.Table, dict[int, pa.Table]]  # compiled run, unit rows, moments
 
 
@@ -41,6 +45,10 @@ def ordered_by_unit(query: exp.Select) -> exp.Select:
     return query.transform(order)
 
 
+def _ordered_aggregates(query: exp.Select) -> list[exp.Expr]:
+    return [node for node in query.find_all(*ORDER_SENSITIVE) if node.find(exp.Order)]
+
+
 def _ordered_reference(units: pa.Table, query: exp.Select) -> pa.Table:
     con = duckdb.connect(config={"threads": 2})
     con.register(UNIT_TABLE, units)
@@ -50,7 +58,7 @@ def _ordered_reference(units: pa.Table, query: exp.Select) -> pa.Table:
 
 @pytest.fixture(scope="module")
 def demo() -> Demo:
-    plan = load_plan(PIPELINES / "checkout_layout.toml")
+    plan = load_plan(CHECKOUT)
     compiled = compile_plan(plan)
     inputs, _ = gather_inputs(plan)
     everything = exp.select("*").from_(UNIT_TABLE)
@@ -69,6 +77,29 @@ def test_moments_equal_unit_ordered_aggregates_bit_for_bit(demo: Demo) -> None:
     compiled, units, by_threads = demo
     reference = _ordered_reference(units, dict(compiled.results)["moments"])
     assert by_threads[2].equals(reference)
+
+
+@pytest.mark.parametrize("name", ["bot_events", "cuped"])
+def test_other_unordered_result_queries_equal_ordered_aggregates(demo: Demo, name: str) -> None:
+    """Result queries that read unit_rows straight carry no ORDER BY in their aggregates."""
+    compiled, units, _ = demo
+    query = dict(compiled.results)[name]
+    assert not _ordered_aggregates(query), name
+    found = DuckDBEngine(threads=2).run(compiled, gather_inputs(load_plan(CHECKOUT))[0])[name]
+    assert found.equals(_ordered_reference(units, query))
+
+
+def test_planning_history_equals_ordered_aggregates() -> None:
+    plan = dataclasses.replace(load_plan(CHECKOUT), pre_period_days=14, history_split=True)
+    compiled = compile_plan(plan)
+    inputs, _ = gather_inputs(plan)
+    everything = exp.select("*").from_(UNIT_TABLE)
+    probe = CompiledRun(unit_rows=compiled.unit_rows, results=(("all", everything),))
+    units = DuckDBEngine().run(probe, inputs)["all"]
+    (name, query), _ = history_results(plan)
+    assert not _ordered_aggregates(query)
+    found = DuckDBEngine(threads=2).run(CompiledRun(compiled.unit_rows, ((name, query),)), inputs)
+    assert found[name].equals(_ordered_reference(units, query))
 
 
 def test_moments_do_not_depend_on_threads(demo: Demo) -> None:

@@ -179,10 +179,12 @@ def cuped_column(metric: MetricDef, stat: str, a: str = "", b: str = "") -> str:
     return f"{metric.name}__cv_{suffix}"
 
 
-def cuped_query(plan: Plan, table: str, *, ordered: bool) -> exp.Select:
+def cuped_query(plan: Plan, table: str) -> exp.Select:
+    """Reads ``table`` straight (with the one-row caps joined, as ``moments``), so its
+    aggregates need no ORDER BY: engines feed result queries the units in one fixed order."""
     select = exp.select(exp.column("variant"))
     for metric in cuped_metrics(plan):
-        for stat, a, b, agg in moment_aggregates(cuped_variables(metric), ordered=ordered):
+        for stat, a, b, agg in moment_aggregates(cuped_variables(metric), ordered=False):
             select = select.select(exp.alias_(agg, cuped_column(metric, stat, a, b)))
     source: exp.Select = select.from_(table)
     ctes = cap_ctes(plan, table)
@@ -352,7 +354,7 @@ def extra_results(plan: Plan, table: str, *, ordered: bool) -> list[tuple[str, e
     if capped_metrics(plan):
         out.append(("caps", caps_query(plan, table)))
     if cuped_metrics(plan):
-        out.append(("cuped", cuped_query(plan, table, ordered=ordered)))
+        out.append(("cuped", cuped_query(plan, table)))
     for metric in quantile_metrics(plan):
         query = quantile_query(metric, table, plan.spec.alpha, ordered=ordered)
         out.append((f"quantile_{metric.name}", query))

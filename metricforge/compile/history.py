@@ -33,21 +33,22 @@ def half_columns(ratio: bool) -> list[tuple[str, str, str | None]]:
     return out
 
 
-def _history(plan: Plan, ordered: bool) -> exp.Select:
+def _history(plan: Plan) -> exp.Select:
+    # Reads unit_rows straight: engines feed it the units in one fixed order (no ORDER BY).
     select = exp.select(exp.alias_(exp.Count(this=exp.Star()), "n_units"))
     for name, _role in plan.reported:
         metric = plan.metric(name)
         x, y = exp.column(f"xpre_{name}"), exp.column(f"ypre_{name}")
         parts: list[tuple[str, exp.Expr]] = [
             ("n", exp.Count(this=x)),
-            ("mean_x", aggregate(exp.Avg, x, ordered=ordered)),
-            ("var_x", aggregate(exp.Variance, x, ordered=ordered)),
+            ("mean_x", aggregate(exp.Avg, x, ordered=False)),
+            ("var_x", aggregate(exp.Variance, x, ordered=False)),
         ]
         if metric.is_ratio:
             parts += [
-                ("mean_y", aggregate(exp.Avg, y.copy(), ordered=ordered)),
-                ("var_y", aggregate(exp.Variance, y.copy(), ordered=ordered)),
-                ("cov_xy", aggregate(exp.CovarSamp, x.copy(), y.copy(), ordered=ordered)),
+                ("mean_y", aggregate(exp.Avg, y.copy(), ordered=False)),
+                ("var_y", aggregate(exp.Variance, y.copy(), ordered=False)),
+                ("cov_xy", aggregate(exp.CovarSamp, x.copy(), y.copy(), ordered=False)),
             ]
         # the halves, over the units with a value in each (a mean metric may have none)
         raw = {
@@ -62,10 +63,10 @@ def _history(plan: Plan, ordered: bool) -> exp.Select:
         parts.append(("h_n", exp.Count(this=kept("x1"))))
         for suffix, a, b in half_columns(metric.is_ratio):
             if b is not None:
-                agg = aggregate(exp.CovarSamp, kept(a), kept(b), ordered=ordered)
+                agg = aggregate(exp.CovarSamp, kept(a), kept(b), ordered=False)
             else:
                 cls = exp.Avg if suffix.startswith("mean") else exp.Variance
-                agg = aggregate(cls, kept(a), ordered=ordered)
+                agg = aggregate(cls, kept(a), ordered=False)
             parts.append((suffix, agg))
         select = select.select(*[exp.alias_(e, f"{name}__{s}") for s, e in parts])
     return select.from_(UNIT_TABLE).where(analysed())
@@ -81,8 +82,8 @@ def _arrivals() -> exp.Select:
     )
 
 
-def history_results(plan: Plan, dialect: str = "duckdb") -> tuple[tuple[str, exp.Select], ...]:
+def history_results(plan: Plan) -> tuple[tuple[str, exp.Select], ...]:
     """The planning result queries of ``plan`` (pre-period and halves in ``unit_rows``)."""
     if not (plan.pre_period_days and plan.history_split):
         raise ValueError("planning queries need a plan with a split pre-period")
-    return (("history", _history(plan, dialect == "duckdb")), ("arrivals", _arrivals()))
+    return (("history", _history(plan)), ("arrivals", _arrivals()))

@@ -1,9 +1,12 @@
 """Data quality counted in the one scan: unit_rows columns and the `data_quality` result.
 
-A value expression (sum and mean metrics) is used only when its result is a finite number
-of magnitude below ``VALUE_LIMIT``; NaN, infinite and larger values are left out as if
-missing (an exact DECIMAL(38, 10) sum of values below 1e18 cannot overflow). The scan
-counts, per unit, in the experiment window:
+A value expression (sum and mean metrics) is used only when it converts to the exact
+DECIMAL(28, 10) (``exact``): a finite number of magnitude below 1e18 (the
+engines' TRY_CAST gives NULL for NaN, ±infinity and anything larger, and DuckDB's also for
+the one double just below 1e18). Other values are left out as if missing; an exact sum
+of used values cannot overflow (DECIMAL(38, 10)). One conversion both tests and converts
+each value, which costs a scan less than a separate magnitude test. The scan counts, per
+unit, in the experiment window:
 
   dq_duplicate_exposures     exposure rows that repeat another row of the unit exactly
                              (same variant and time) inside the experiment's dates
@@ -20,7 +23,6 @@ import sqlglot.expressions as exp
 
 from metricforge.spec.model import Kind, MetricDef, Plan
 
-VALUE_LIMIT = 1e18
 DUPLICATE_EXPOSURES = "dq_duplicate_exposures"
 UNITS_WITHOUT_EVENTS = "units_without_events"
 
@@ -37,21 +39,24 @@ def has_value(metric: MetricDef) -> bool:
     return metric.kind in (Kind.SUM, Kind.MEAN)
 
 
-def usable(value: exp.Expr) -> exp.Expr:
-    """True when ``value`` is finite and below the limit; false for NULL, NaN and ±inf.
+EXACT = exp.DataType.build("DECIMAL(28, 10)")  # 18 integer digits: magnitude below 1e18
 
-    NaN compares greater than every number in DuckDB and Spark, and false under IEEE
-    rules, so one comparison of the magnitude covers NaN, both infinities and the limit.
+
+def exact(value: exp.Expr) -> exp.Expr:
+    """``value`` as an exact decimal; NULL when it is NULL, NaN, ±infinite or too large.
+
+    TRY_CAST, not CAST: an engine may hoist a cast out of the CASE around it and apply it
+    to every row, and a failed cast must not stop the run.
     """
-    magnitude = exp.Abs(this=exp.cast(value.copy(), "DOUBLE"))
-    return exp.paren(magnitude < exp.Literal.number(repr(VALUE_LIMIT)))
+    return exp.TryCast(this=value.copy(), to=EXACT.copy())
 
 
 def value_checks(cond: exp.Expr, value: exp.Expr, metric: MetricDef) -> list[tuple[str, exp.Expr]]:
     """Session-level counts of ignored and negative values: (column, condition)."""
     wrapped = exp.paren(value.copy())
-    ignored = exp.and_(cond.copy(), wrapped.is_(exp.null()).not_(), usable(value).not_())
-    negative = exp.and_(cond.copy(), usable(value), wrapped.copy() < exp.Literal.number(0))
+    used = exact(value).is_(exp.null()).not_()
+    ignored = exp.and_(cond.copy(), wrapped.is_(exp.null()).not_(), exact(value).is_(exp.null()))
+    negative = exp.and_(cond.copy(), used, wrapped.copy() < exp.Literal.number(0))
     return [
         (ignored_column(metric.name), ignored),
         (negative_column(metric.name), negative),

@@ -4,10 +4,11 @@ A run is ONE scan of the events, materialised as one row per exposed unit (the t
 ``unit_rows``), followed by small result queries over that table. The unit query's
 stages (CTEs):
   first_exposure  each unit's first exposure inside the experiment, its variant and
-                  how many distinct variants it saw
+                  whether it saw two variants or more
   sessions        events joined to first exposures (inside the analysis window),
                   grouped once per (unit, session): every metric's session-level part,
                   the bot rules' inputs and, for dwell metrics, click/back time lists
+                  (built in ``compile/sessions.py``)
   units           one row per unit holding every metric's per-unit value
   (unit select)   per-unit bot verdict and contamination flag; final metric columns
 
@@ -26,27 +27,25 @@ The unit query reads two views, ``events`` and ``exposures``, that the engine re
 
 from __future__ import annotations
 
-import datetime as dt
 from dataclasses import dataclass
 
 import sqlglot.expressions as exp
 
 from metricforge.compile.checks import check_results
-from metricforge.compile.expressions import qualify
 from metricforge.compile.extras import cap_ctes, capped, extra_results
 from metricforge.compile.quality import (
     DUPLICATE_EXPOSURES,
     data_quality_query,
     unit_columns,
-    usable,
-    value_checks,
 )
+from metricforge.compile.sessions import periods, sessions
 from metricforge.compile.sqlparts import (
     BIGINT,
     DOUBLE,
     UNIT_TABLE,
     aggregate,
     sorted_concat,
+    timestamp,
     with_ctes,
 )
 from metricforge.compile.sqlparts import all_of as _and
@@ -54,9 +53,7 @@ from metricforge.compile.sqlparts import case as _case
 from metricforge.compile.sqlparts import col as _col
 from metricforge.compile.sqlparts import lit as _lit
 from metricforge.compile.stitch import stitch_stages
-from metricforge.spec.model import BotRule, Kind, MetricDef, Plan, RuleKind, TwoVariantPolicy
-
-EXACT = exp.DataType.build("DECIMAL(38, 10)")
+from metricforge.spec.model import Kind, MetricDef, Plan, RuleKind, TwoVariantPolicy
 
 
 @dataclass(frozen=True)
@@ -90,28 +87,16 @@ def result_columns(metric: MetricDef) -> MetricColumns:
     return MetricColumns(f"{base}__n", f"{base}__mean_x", f"{base}__var_x")
 
 
-def _ts(value: dt.datetime) -> exp.Expr:
-    return exp.cast(exp.Literal.string(value.isoformat(sep=" ")), "TIMESTAMP")
-
-
-def _event_condition(metric: MetricDef, events: str) -> exp.Expr:
-    # A unit without events joins one all-NULL event row (LEFT JOIN); a condition that
-    # could hold on it (no event types; `where = "device IS NULL"`) must not count it.
-    kinds: exp.Expr = _col("ts", events).is_(exp.null()).not_()
-    if metric.events:
-        kinds = _col("event", events).isin(*[_lit(e) for e in metric.events])
-    where = exp.paren(qualify(metric.where, events)) if metric.where is not None else None
-    return _and(kinds, where)
-
-
 class _Builder:
-    def __init__(self, plan: Plan, dialect: str) -> None:
+    def __init__(self, plan: Plan, dialect: str, ts_bounds: bool = True) -> None:
         self.plan = plan
+        self.ts_bounds = ts_bounds
         self.spec = plan.spec
         self.dialect = dialect
         # Aggregates ordered by unit where the engine's float sums depend on row order: in
-        # DuckDB inside the unit query (stitching) and in result queries that do not read
-        # unit_rows straight (joins, CTEs); `moments` relies on the engine's unit order.
+        # DuckDB inside the unit query (stitching) and in result queries whose rows pass
+        # through ranks or windows (quantile metrics). Result queries that read unit_rows
+        # straight (moments, bot_events, cuped, history) rely on the engine's unit order.
         self.ordered = dialect == "duckdb"
 
     # -- stage 1 -------------------------------------------------------------------------
@@ -131,8 +116,8 @@ class _Builder:
                     _col("experiment").eq(_lit(self.spec.name)),
                     _col("unit_id").is_(exp.null()).not_(),
                     _col("variant").is_(exp.null()).not_(),
-                    _col("ts") >= _ts(self.spec.start),
-                    _col("ts") < _ts(self.spec.end),
+                    _col("ts") >= timestamp(self.spec.start),
+                    _col("ts") < timestamp(self.spec.end),
                 )
             )
             .group_by(_col("unit_id"), _col("variant"), _col("ts"))
@@ -152,7 +137,9 @@ class _Builder:
             exp.alias_(_col("unit_id", x), "unit"),
             exp.alias_(exp.Min(this=ts.copy()), "first_ts"),
             exp.alias_(chosen.else_(exp.Min(this=variant.copy())), "variant"),
-            exp.alias_(exp.Count(this=exp.Distinct(expressions=[variant.copy()])), "n_variants"),
+            # seen in two variants or more: a MIN/MAX pair, not a DISTINCT count (which DuckDB
+            # runs as a grouping and a join of its own)
+            exp.alias_(exp.Min(this=variant.copy()) < exp.Max(this=variant.copy()), "two_variants"),
             exp.alias_(exp.cast(repeats, BIGINT), DUPLICATE_EXPOSURES),
         )
         if self.spec.stitch_to:
@@ -163,199 +150,37 @@ class _Builder:
             _col("unit_id", x)
         )
 
-    # -- stage 2 -------------------------------------------------------------------------
-    def sessions(self) -> exp.Select:
-        e, f = "e", "f"
-        window = exp.Interval(this=_lit(str(self.spec.window_days)), unit=exp.var("DAY"))
-        last = self.spec.end + dt.timedelta(days=self.spec.window_days)
-        pre = self.plan.pre_period_days
-        first: exp.Expr = _col("first_ts", f)
-        if pre:  # also read each unit's pre-period: [first exposure - pre days, first exposure)
-            pre_interval = exp.Interval(this=_lit(str(pre)), unit=exp.var("DAY"))
-            first = exp.Sub(this=first, expression=pre_interval)
-        join_on = _and(
-            _col(self.spec.unit, e).eq(_col("unit", f)),
-            _col("ts", e) >= first,
-            _col("ts", e) < exp.Add(this=_col("first_ts", f), expression=window),
-            _col("ts", e) >= _ts(self.spec.start - dt.timedelta(days=pre)),
-            _col("ts", e) < _ts(last),
-        )
-        # With a pre-period, every experiment-period part is limited to events at or after
-        # the first exposure, and each metric gets a twin per earlier period (`pre`, and for
-        # planning `pre1`/`pre2`, the two halves of the pre-period).
-        in_window = _col("ts", e) >= _col("first_ts", f) if pre else None
-        periods = self._periods(e, f)
-        n_events: exp.Expr = (
-            exp.Count(this=_case(in_window, _lit(1)))
-            if in_window is not None
-            else exp.Count(this=_col("ts", e))
-        )
-        select = exp.select(
-            _col("unit", f),
-            *self._carried(f),
-            exp.alias_(_col("session_id", e), "session"),
-            exp.alias_(n_events, "n_events"),
-        )
-        if self.spec.stitch_to:  # the stitch ids seen in the experiment window
-            ident: exp.Expr = _col(self.spec.stitch_to, e)
-            if in_window is not None:
-                ident = _case(in_window.copy(), ident)
-            select = select.select(
-                exp.alias_(exp.Min(this=ident), "id_min"),
-                exp.alias_(exp.Max(this=ident.copy()), "id_max"),
-            )
-        for period, cond in periods:
-            select = select.select(
-                exp.alias_(exp.Count(this=_case(cond.copy(), _lit(1))), f"n_{period}_events")
-            )
-        for i, rule in enumerate(self.plan.bot_filter.rules):
-            flag = self._rule_flag(rule, e)
-            if flag is not None:
-                flag = _and(flag, in_window.copy() if in_window is not None else None)
-                select = select.select(exp.alias_(exp.LogicalOr(this=flag), f"bot_rule_{i}"))
-        for metric in self.plan.metrics:
-            select = select.select(*self._session_parts(metric, e, "", in_window))
-            for period, cond in periods:
-                select = select.select(*self._session_parts(metric, e, period, cond))
-        return (
-            select.from_(exp.alias_(exp.to_table("first_exposure"), f, table=True))
-            .join(exp.alias_(exp.to_table("events"), e, table=True), on=join_on, join_type="left")
-            .group_by(_col("unit", f), _col("session_id", e))
-        )
-
-    @staticmethod
-    def _carried(table: str | None = None) -> list[exp.Expr]:
-        """A unit's exposure facts (variant, variant count, first exposure, repeated exposure
-        rows), carried through a grouping by unit: they depend on the unit alone, so they are
-        not grouping keys (fewer keys to hash)."""
-        return [
-            exp.alias_(exp.AnyValue(this=_col(name, table)), name)
-            for name in ("variant", "n_variants", "first_ts", DUPLICATE_EXPOSURES)
-        ]
-
-    def _periods(self, e: str, f: str) -> list[tuple[str, exp.Expr]]:
-        """The periods before the first exposure: (column suffix, condition on an event)."""
-        days = self.plan.pre_period_days
-        if not days:
-            return []
-        ts, first = _col("ts", e), _col("first_ts", f)
-        out: list[tuple[str, exp.Expr]] = [("pre", exp.paren(ts >= first).not_())]
-        if self.plan.history_split:  # halves, in hours so that an odd D splits evenly
-            half = exp.Interval(this=_lit(str(days * 12)), unit=exp.var("HOUR"))
-            middle = exp.Sub(this=first.copy(), expression=half)
-            out.append(("pre1", ts.copy() < middle))
-            out.append(("pre2", _and(ts.copy() >= middle.copy(), ts.copy() < first.copy())))
-        return out
-
-    def _rule_flag(self, rule: BotRule, e: str) -> exp.Expr | None:
-        if rule.kind is RuleKind.USER_AGENT:
-            ua = exp.Lower(this=_col("user_agent", e))
-            hits = [exp.Contains(this=ua.copy(), expression=_lit(t)) for t in rule.tokens]
-            return exp.or_(*hits)
-        if rule.kind is RuleKind.DENY_IP:
-            return _col("ip_hash", e).isin(*[_lit(t) for t in rule.tokens])
-        return None  # unit-level rules are applied in `classified`
-
-    def _session_parts(
-        self, metric: MetricDef, e: str, period: str, period_cond: exp.Expr | None
-    ) -> list[exp.Expr]:
-        """A metric's session-level columns for one period ("" = experiment, "pre")."""
-        s = f"s{period}_{metric.name}"
-        cond = _and(
-            _event_condition(metric, e), period_cond.copy() if period_cond is not None else None
-        )
-        if metric.kind in (Kind.COUNT, Kind.PROPORTION):
-            return [exp.alias_(exp.Count(this=_case(cond, _lit(1))), s)]
-        if metric.kind in (Kind.SUM, Kind.MEAN):
-            assert metric.value is not None
-            raw = qualify(metric.value, e)
-            used = _and(cond, usable(raw))  # NaN, infinite and huge values are left out
-            # TRY_CAST: an engine may hoist the cast out of the CASE and apply it to every row
-            value = exp.TryCast(this=raw.copy(), to=EXACT.copy())
-            parts: list[exp.Expr] = [exp.alias_(exp.Sum(this=_case(used, value)), s)]
-            if metric.kind is Kind.MEAN:
-                parts.append(
-                    exp.alias_(
-                        exp.Count(this=_case(used.copy(), _lit(1))), f"c{period}_{metric.name}"
-                    )
-                )
-            if not period:
-                parts += [
-                    exp.alias_(exp.Count(this=_case(check, _lit(1))), name)
-                    for name, check in value_checks(cond, raw, metric)
-                ]
-            return parts
-        if metric.kind is Kind.DWELL_SUCCESS:
-            return [exp.alias_(self._dwell_success(metric, e, period_cond), s)]
-        if metric.kind is Kind.QUANTILE:  # the number of values and, in the experiment
-            assert metric.value is not None  # period, their list
-            listed_value = qualify(metric.value, e)
-            has = _and(cond, listed_value.is_(exp.null()).not_())
-            parts = [exp.alias_(exp.Count(this=_case(has, _lit(1))), s)]
-            if not period:
-                listed = exp.ArrayAgg(this=exp.cast(listed_value.copy(), DOUBLE))
-                where = exp.Where(this=has.copy())
-                parts.append(
-                    exp.alias_(exp.Filter(this=listed, expression=where), f"l_{metric.name}")
-                )
-            return parts
-        return []  # ratio and composite are built from other metrics' per-unit columns
-
-    def _dwell_success(self, metric: MetricDef, e: str, period_cond: exp.Expr | None) -> exp.Expr:
-        """1 when the session has a click with no back within the threshold after it."""
-        where = qualify(metric.where, e) if metric.where is not None else None
-
-        def times(event: str) -> tuple[exp.Expr, exp.Expr]:
-            cond = _and(
-                _col("event", e).eq(_lit(event)),
-                where.copy() if where is not None else None,
-                period_cond.copy() if period_cond is not None else None,
-            )
-            listed = exp.Filter(
-                this=exp.ArrayAgg(this=exp.UnixMillis(this=_col("ts", e))),
-                expression=exp.Where(this=cond),
-            )
-            return listed, exp.Count(this=_case(cond, _lit(1)))
-
-        clicks, n_clicks = times("click")
-        backs, n_backs = times("back")
-        c, b = exp.to_identifier("c"), exp.to_identifier("b")
-        threshold = _lit(int(round(metric.threshold_s * 1000)))
-        quick_back = exp.ArrayFilter(
-            this=backs,
-            expression=exp.Lambda(
-                this=_and(
-                    exp.column(b) > exp.column(c),
-                    exp.column(b) <= exp.Add(this=exp.column(c), expression=threshold),
-                ),
-                expressions=[b],
-            ),
-        )
-        good_clicks = exp.ArrayFilter(
-            this=clicks,
-            expression=exp.Lambda(this=exp.ArraySize(this=quick_back).eq(_lit(0)), expressions=[c]),
-        )
-        # Empty lists are NULL in some engines: decide by counts first.
-        return (
-            exp.Case()
-            .when(n_clicks.eq(_lit(0)), _lit(0))
-            .when(n_backs.eq(_lit(0)), _lit(1))
-            .when(exp.ArraySize(this=good_clicks) > _lit(0), _lit(1))
-            .else_(_lit(0))
-        )
-
+    # -- stage 2: compile/sessions.py -------------------------------------------------------
     # -- stage 3 -------------------------------------------------------------------------
     def units(self) -> exp.Select:
+        """One row per unit: its sessions rolled up, joined to its exposure facts (variant,
+        variant count, first exposure, repeated exposure rows). The facts depend on the unit
+        alone, so they join the 1-per-unit rollup instead of riding through both groupings."""
+        u, f = "u", "f"
+        facts = ("variant", "two_variants", "first_ts", DUPLICATE_EXPOSURES)
+        rollup = exp.alias_(exp.Subquery(this=self._rollup()), u, table=True)
+        return (
+            exp.select(
+                *[_col(name, f) for name in facts],
+                exp.Column(this=exp.Star(), table=exp.to_identifier(u)),
+            )
+            .from_(rollup)
+            .join(
+                exp.alias_(exp.to_table("first_exposure"), f, table=True),
+                on=_col("unit", u).eq(_col("unit", f)),
+            )
+        )
+
+    def _rollup(self) -> exp.Select:
         select = exp.select(
             _col("unit"),
-            *self._carried(),
             exp.alias_(exp.cast(exp.Sum(this=_col("n_events")), BIGINT), "n_events"),
             exp.alias_(exp.Max(this=_col("n_events")), "max_session_events"),
             exp.alias_(exp.Count(this=_col("session")), "n_sessions"),
         )
         pre = bool(self.plan.pre_period_days)
-        periods = [p for p, _ in self._periods("e", "f")]
-        for period in periods:
+        earlier = [p for p, _ in periods(self.plan)]
+        for period in earlier:
             total = exp.cast(exp.Sum(this=_col(f"n_{period}_events")), BIGINT)
             select = select.select(exp.alias_(total, f"n_{period}_events"))
         if self.spec.stitch_to:
@@ -372,7 +197,7 @@ class _Builder:
             select = select.select(exp.alias_(exp.cast(exp.Sum(this=_col(column)), BIGINT), column))
         for metric in self.plan.metrics:
             select = select.select(*self._unit_parts(metric, "", "n_events" if pre else None))
-            for period in periods:
+            for period in earlier:
                 select = select.select(*self._unit_parts(metric, period, f"n_{period}_events"))
         return select.from_("sessions").group_by(_col("unit"))
 
@@ -465,7 +290,7 @@ class _Builder:
             elif rule.kind is RuleKind.DENY_UNIT:
                 flags.append(_col("unit").isin(*[_lit(t) for t in rule.tokens]))
         is_bot = exp.paren(exp.or_(*flags)) if flags else exp.false()
-        two_variants = _col("n_variants") > _lit(1)
+        two_variants = _col("two_variants")
         excluded = two_variants if self.spec.two_variant_units is TwoVariantPolicy.EXCLUDE else None
         select = exp.select(
             _col("unit"),
@@ -473,25 +298,25 @@ class _Builder:
             _col("n_events"),
             exp.alias_(is_bot, "is_bot"),
             exp.alias_(excluded.copy() if excluded is not None else exp.false(), "contaminated"),
-            exp.alias_(two_variants, "two_variants"),
+            two_variants.copy(),
             _col("first_ts"),
             _col(DUPLICATE_EXPOSURES),
             *[_col(column) for column in unit_columns(self.plan)],
         )
         if stitched:
             select = select.select(_col("identity"), _col("n_cookies"))
-        periods = ["", *(p for p, _ in self._periods("e", "f"))]
+        suffixes = ["", *(p for p, _ in periods(self.plan))]
         if self.plan.pre_period_days:
             select = select.select(exp.alias_(_col("n_pre_events") > _lit(0), "has_pre"))
         if self.plan.history_split:  # whole days from the experiment start to first exposure
             since = exp.Sub(
                 this=exp.UnixMillis(this=_col("first_ts")),
-                expression=exp.UnixMillis(this=_ts(self.spec.start)),
+                expression=exp.UnixMillis(this=timestamp(self.spec.start)),
             )
             day = exp.Floor(this=exp.Div(this=exp.paren(since), expression=_lit(86_400_000)))
             select = select.select(exp.alias_(exp.cast(day, BIGINT), "first_day"))
         for metric in self.plan.metrics:
-            for period in periods:
+            for period in suffixes:
                 x, y = self._x_y(metric, period)
                 select = select.select(exp.alias_(x, f"x{period}_{metric.name}"))
                 if y is not None:
@@ -531,7 +356,9 @@ class _Builder:
                 exp.alias_(self._agg(exp.Variance, capped_x.copy()), cols.var_x),
             )
             if cols.successes is not None:  # per-unit 0/1: an integer sum is exact
-                ones = exp.Sum(this=exp.cast(_col(x), BIGINT))
+                # BIGINT (DuckDB's SUM of BIGINT is a 128-bit integer, which the Arrow
+                # typing of results would cast, paying for Arrow's compute set-up)
+                ones = exp.cast(exp.Sum(this=exp.cast(_col(x), BIGINT)), BIGINT)
                 select = select.select(exp.alias_(ones, cols.successes))
             if metric.is_ratio:
                 y = f"y_{metric.name}"
@@ -552,12 +379,12 @@ class _Builder:
         query = self.classified()
         stages = [
             ("first_exposure", self.first_exposure()),
-            ("sessions", self.sessions()),
+            ("sessions", sessions(self.plan, ts_bounds=self.ts_bounds)),
             ("units", self.units()),
         ]
         if self.spec.stitch_to:
-            periods = [p for p, _ in self._periods("e", "f")]
-            stages += stitch_stages(self.plan, self.ordered, periods)
+            earlier = [p for p, _ in periods(self.plan)]
+            stages += stitch_stages(self.plan, self.ordered, earlier)
         for name, cte in stages:
             query = query.with_(name, as_=cte)
         return query
@@ -566,7 +393,7 @@ class _Builder:
         results = (
             ("moments", self.moments()),
             ("data_quality", data_quality_query(self.plan, UNIT_TABLE)),
-            *check_results(self.plan, self.ordered),
+            *check_results(self.plan),
             *extra_results(self.plan, UNIT_TABLE, ordered=self.ordered),
         )
         return CompiledRun(unit_rows=self.unit_rows(), results=results)
@@ -601,9 +428,9 @@ class CompiledRun:
         return [(UNIT_TABLE, self.materialise(dialect)), *self.results]
 
 
-def compile_plan(plan: Plan, dialect: str = "duckdb") -> CompiledRun:
+def compile_plan(plan: Plan, dialect: str = "duckdb", *, ts_bounds: bool = True) -> CompiledRun:
     """The statements of a run, as sqlglot trees for ``dialect`` (duckdb or spark)."""
-    return _Builder(plan, dialect).build()
+    return _Builder(plan, dialect, ts_bounds).build()
 
 
 def render(plan: Plan, dialect: str = "duckdb", *, pretty: bool = True) -> str:

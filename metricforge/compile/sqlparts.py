@@ -7,6 +7,8 @@ values, and the short constructors the query builders use everywhere.
 
 from __future__ import annotations
 
+import datetime as dt
+
 import sqlglot.expressions as exp
 
 UNIT_TABLE = "unit_rows"
@@ -22,6 +24,11 @@ def lit(value: str | int | float) -> exp.Expr:
     if isinstance(value, str):
         return exp.Literal.string(value)
     return exp.Literal.number(value)
+
+
+def timestamp(value: dt.datetime) -> exp.Expr:
+    """A TIMESTAMP literal (the spec's times are UTC)."""
+    return exp.cast(exp.Literal.string(value.isoformat(sep=" ")), "TIMESTAMP")
 
 
 def case(cond: exp.Expr, then: exp.Expr, default: exp.Expr | None = None) -> exp.Case:

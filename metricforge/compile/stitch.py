@@ -102,15 +102,15 @@ def _stitched(plan: Plan, ordered: bool, periods: list[str]) -> exp.Select:
         chosen = chosen.when(
             exp.Min(this=col(f"first_ts_{k}", i)).eq(first.copy()), exp.Literal.string(name)
         )
-    variants = exp.Greatest(
-        this=exp.Max(this=col("n_variants", i)),
-        expressions=[exp.Count(this=exp.Distinct(expressions=[col("variant", i)]))],
+    variants = exp.or_(  # a cookie seen in two variants, or cookies in different ones
+        exp.LogicalOr(this=col("two_variants", i)),
+        exp.Min(this=col("variant", i)) < exp.Max(this=col("variant", i)),
     )
     select = exp.select(
         exp.alias_(col("stitch_key", i), "unit"),
         col("identity", i),
         exp.alias_(chosen.else_(exp.Min(this=col("variant", i))), "variant"),
-        exp.alias_(variants, "n_variants"),
+        exp.alias_(variants, "two_variants"),
         exp.alias_(first, "first_ts"),
         exp.alias_(exp.cast(exp.Sum(this=col("n_events", i)), BIGINT), "n_events"),
         exp.alias_(exp.Max(this=col("max_session_events", i)), "max_session_events"),

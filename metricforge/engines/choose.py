@@ -5,10 +5,13 @@ from __future__ import annotations
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from enum import StrEnum
+from typing import TYPE_CHECKING
 
-from metricforge.engines.base import Engine
 from metricforge.errors import EngineError
 from metricforge.progress import DisplayFactory
+
+if TYPE_CHECKING:  # the engines (and pyarrow, numpy) load when one is opened
+    from metricforge.engines.base import Engine
 
 
 class EngineName(StrEnum):

@@ -80,8 +80,9 @@ def hardened_connection(
         "memory_limit": memory_limit,
         "temp_directory": str(temp_dir),
         # Parquet min/max statistics leave NaN out; with them DuckDB folds `isnan(x)` to false
-        # and `abs(x) < 1e18` to true for a column holding NaN, so NaN values would slip past
-        # the checks of compile/quality.py. Values are decided row by row instead.
+        # and `abs(x) < 1e18` to true for a column holding NaN (and may take a TRY_CAST for one
+        # that cannot fail), so NaN values would slip past the checks of compile/quality.py.
+        # Values are decided row by row instead.
         "disabled_optimizers": "statistics_propagation",
     }
     if threads:
@@ -158,7 +159,8 @@ class DuckDBEngine:
         return str(duckdb.__version__)
 
     def run(self, compiled: CompiledRun, inputs: EngineInputs) -> dict[str, pa.Table]:
-        return self.run_statements(rendered(compiled, self.dialect), inputs)
+        # rendered() checks every statement as a tree and parses its text back (guard.py)
+        return self._execute(rendered(compiled, self.dialect), inputs)
 
     def run_statements(
         self, statements: Sequence[tuple[str, str]], inputs: EngineInputs
@@ -166,6 +168,12 @@ class DuckDBEngine:
         """Run DuckDB SQL text: first the statement storing ``unit_rows``, then named
         SELECTs over it (in unit order, on one thread); returns each SELECT's result."""
         check_statements(statements, self.dialect)
+        return self._execute(statements, inputs)
+
+    def _execute(
+        self, statements: Sequence[tuple[str, str]], inputs: EngineInputs
+    ) -> dict[str, pa.Table]:
+        """Checked statements: DuckDB's own parser must agree, then they run."""
         _check_with_duckdb(statements)
         (_, store), results = statements[0], statements[1:]
         with tempfile.TemporaryDirectory(prefix="metricforge-spill-", dir=self.temp_dir) as tmp:

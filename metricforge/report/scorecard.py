@@ -16,6 +16,7 @@ from metricforge.checks.contamination import two_variant_counts
 from metricforge.checks.identity import identity_section
 from metricforge.errors import StatsError
 from metricforge.report.adjusted import adjusted_effect, extra_columns
+from metricforge.report.arrow_rows import table_from_rows
 from metricforge.report.inference import TWO_SIDED, adjust, factorial_rows, hypothesis
 from metricforge.runner import RunData
 from metricforge.spec.model import MetricDef, Role
@@ -84,7 +85,7 @@ class Scorecard:
     quality: dict[str, Any] = field(default_factory=dict)
 
     def table(self) -> pa.Table:
-        return pa.Table.from_pylist(self.rows, schema=SCORECARD_SCHEMA)
+        return table_from_rows(self.rows, SCORECARD_SCHEMA)
 
     def as_json(self) -> dict[str, Any]:
         return {

@@ -20,9 +20,8 @@ import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
-from scipy import stats as st
-
 from metricforge.errors import StatsError
+from metricforge.stats.dist import t_ppf, t_sf
 from metricforge.stats.moments import Moments, ratio_point_and_variance
 
 
@@ -57,8 +56,8 @@ def contrast(
         df = var * var / spread if spread > 0 else math.inf
     if var > 0:
         se = math.sqrt(var)
-        p = 2.0 * float(st.t.sf(abs(estimate) / se, df))
-        half = float(st.t.ppf(1.0 - alpha / 2.0, df)) * se
+        p = 2.0 * float(t_sf(abs(estimate) / se, df))
+        half = float(t_ppf(1.0 - alpha / 2.0, df)) * se
     else:
         p, half = (1.0 if estimate == 0 else 0.0), 0.0
     return ContrastResult(

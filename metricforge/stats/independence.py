@@ -5,9 +5,8 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-from scipy import stats as st
-
 from metricforge.errors import StatsError
+from metricforge.stats.dist import pearson_independence
 
 
 @dataclass(frozen=True, slots=True)
@@ -26,5 +25,5 @@ def share_differs(flagged: Sequence[int], total: Sequence[int]) -> IndependenceR
     table = [list(flagged), [t - f for f, t in zip(flagged, total, strict=True)]]
     if sum(table[0]) == 0 or sum(table[1]) == 0:
         return IndependenceResult(0.0, len(flagged) - 1, 1.0)
-    chi2, p, df, _ = st.chi2_contingency(table, correction=False)
+    chi2, p, df = pearson_independence(table)
     return IndependenceResult(float(chi2), int(df), float(p))

@@ -11,8 +11,8 @@ from __future__ import annotations
 
 import numpy as np
 import numpy.typing as npt
-from scipy import stats as st
 
+from metricforge.stats.dist import norm_sf
 from metricforge.stats.moments import FloatArray
 
 FISHER_BELOW = 5.0  # smallest expected cell count for which the z-test is used
@@ -64,12 +64,14 @@ def z_test(
         stat = (s_t / n_t - s_c / n_c) / se
         stat = np.where(se > 0, stat, 0.0)
     if side == 0:
-        return np.asarray(2.0 * st.norm.sf(np.abs(stat)), np.float64)
-    return np.asarray(st.norm.sf(side * stat), np.float64)
+        return np.asarray(2.0 * norm_sf(np.abs(stat)), np.float64)
+    return norm_sf(side * stat)
 
 
 def fisher_test(s_t: int, n_t: int, s_c: int, n_c: int, side: int = 0) -> float:
     """Fisher's exact test on [[s_t, n_t − s_t], [s_c, n_c − s_c]] (side as in z_test)."""
+    from scipy import stats as st  # only for small counts: scipy.stats is slow to import
+
     alternative = {0: "two-sided", 1: "greater", -1: "less"}[side]
     table = [[s_t, n_t - s_t], [s_c, n_c - s_c]]
     return float(st.fisher_exact(table, alternative=alternative).pvalue)

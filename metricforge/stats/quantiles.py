@@ -17,9 +17,9 @@ from dataclasses import dataclass
 from functools import lru_cache
 
 import numpy as np
-from scipy import stats as st
 
 from metricforge.errors import StatsError
+from metricforge.stats.dist import norm_ppf, norm_sf
 from metricforge.stats.effects import (
     Effect,
     check_hypothesis,
@@ -37,7 +37,7 @@ def two_sided_z(alpha: float) -> float:
     """The standard normal quantile at 1 − α/2."""
     if not 0.0 < alpha < 1.0:
         raise StatsError(f"alpha must lie strictly between 0 and 1, is {alpha}")
-    return float(st.norm.ppf(1.0 - alpha / 2.0))
+    return float(norm_ppf(1.0 - alpha / 2.0))
 
 
 @dataclass(frozen=True, slots=True)
@@ -117,9 +117,9 @@ def quantile_compare(
         known = contrast == 0 if side == 0 else sign * contrast <= 0
         p = 1.0 if known else 0.0
     elif side == 0:
-        p = 2.0 * float(st.norm.sf(abs(contrast) / se))
+        p = 2.0 * float(norm_sf(abs(contrast) / se))
     else:
-        p = float(st.norm.sf(sign * contrast / se))
+        p = float(norm_sf(sign * contrast / se))
 
     def one(v: float) -> FloatArray:
         return np.array([v], np.float64)

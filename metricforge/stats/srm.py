@@ -6,9 +6,8 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-from scipy import stats as st
-
 from metricforge.errors import StatsError
+from metricforge.stats.dist import pearson_goodness_of_fit
 
 
 @dataclass(frozen=True, slots=True)
@@ -38,5 +37,5 @@ def srm_test(observed: Sequence[int], planned_weights: Sequence[float]) -> SrmRe
         raise StatsError("no units to test")
     weight_sum = math.fsum(planned_weights)
     expected = tuple(total * w / weight_sum for w in planned_weights)
-    chi2, p = st.chisquare(counts, expected)
+    chi2, p = pearson_goodness_of_fit(counts, expected)
     return SrmResult(float(chi2), len(counts) - 1, float(p), counts, expected)

@@ -11,7 +11,7 @@ WITH first_exposure AS (
       THEN 'treatment'
       ELSE MIN(x.variant)
     END AS variant,
-    COUNT(DISTINCT x.variant) AS n_variants,
+    MIN(x.variant) < MAX(x.variant) AS two_variants,
     CAST(SUM(x.n_rows) - COUNT(*) AS BIGINT) AS dq_duplicate_exposures
   FROM (
     SELECT
@@ -36,10 +36,6 @@ WITH first_exposure AS (
 ), sessions AS (
   SELECT
     f.unit,
-    ANY_VALUE(f.variant) AS variant,
-    ANY_VALUE(f.n_variants) AS n_variants,
-    ANY_VALUE(f.first_ts) AS first_ts,
-    ANY_VALUE(f.dq_duplicate_exposures) AS dq_duplicate_exposures,
     e.session_id AS session,
     COUNT(CASE WHEN e.ts >= f.first_ts THEN 1 END) AS n_events,
     COUNT(CASE WHEN NOT (
@@ -56,13 +52,8 @@ WITH first_exposure AS (
     ) AS bot_rule_0,
     SUM(
       CASE
-        WHEN (
-          e.event IN ('purchase') AND e.ts >= f.first_ts
-        )
-        AND (
-          ABS(CAST(e.value AS DOUBLE)) < 1e+18
-        )
-        THEN TRY_CAST(e.value AS DECIMAL(38, 10))
+        WHEN e.event IN ('purchase') AND e.ts >= f.first_ts
+        THEN TRY_CAST(e.value AS DECIMAL(28, 10))
       END
     ) AS s_revenue,
     COUNT(
@@ -73,9 +64,7 @@ WITH first_exposure AS (
         AND NOT (
           e.value
         ) IS NULL
-        AND NOT (
-          ABS(CAST(e.value AS DOUBLE)) < 1e+18
-        )
+        AND TRY_CAST(e.value AS DECIMAL(28, 10)) IS NULL
         THEN 1
       END
     ) AS dq_ignored_revenue,
@@ -84,9 +73,7 @@ WITH first_exposure AS (
         WHEN (
           e.event IN ('purchase') AND e.ts >= f.first_ts
         )
-        AND (
-          ABS(CAST(e.value AS DOUBLE)) < 1e+18
-        )
+        AND NOT TRY_CAST(e.value AS DECIMAL(28, 10)) IS NULL
         AND (
           e.value
         ) < 0
@@ -95,15 +82,10 @@ WITH first_exposure AS (
     ) AS dq_negative_revenue,
     SUM(
       CASE
-        WHEN (
-          e.event IN ('purchase') AND NOT (
-            e.ts >= f.first_ts
-          )
+        WHEN e.event IN ('purchase') AND NOT (
+          e.ts >= f.first_ts
         )
-        AND (
-          ABS(CAST(e.value AS DOUBLE)) < 1e+18
-        )
-        THEN TRY_CAST(e.value AS DECIMAL(38, 10))
+        THEN TRY_CAST(e.value AS DECIMAL(28, 10))
       END
     ) AS spre_revenue,
     COUNT(CASE WHEN e.event IN ('unsubscribe') AND e.ts >= f.first_ts THEN 1 END) AS s_unsubscribes,
@@ -112,24 +94,14 @@ WITH first_exposure AS (
     ) THEN 1 END) AS spre_unsubscribes,
     SUM(
       CASE
-        WHEN (
-          e.event IN ('page_load') AND e.ts >= f.first_ts
-        )
-        AND (
-          ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
-        )
-        THEN TRY_CAST(e.latency_ms AS DECIMAL(38, 10))
+        WHEN e.event IN ('page_load') AND e.ts >= f.first_ts
+        THEN TRY_CAST(e.latency_ms AS DECIMAL(28, 10))
       END
     ) AS s_page_latency,
     COUNT(
       CASE
-        WHEN (
-          e.event IN ('page_load') AND e.ts >= f.first_ts
-        )
-        AND (
-          ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
-        )
-        THEN 1
+        WHEN e.event IN ('page_load') AND e.ts >= f.first_ts
+        THEN TRY_CAST(e.latency_ms AS DECIMAL(28, 10))
       END
     ) AS c_page_latency,
     COUNT(
@@ -140,9 +112,7 @@ WITH first_exposure AS (
         AND NOT (
           e.latency_ms
         ) IS NULL
-        AND NOT (
-          ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
-        )
+        AND TRY_CAST(e.latency_ms AS DECIMAL(28, 10)) IS NULL
         THEN 1
       END
     ) AS dq_ignored_page_latency,
@@ -151,9 +121,7 @@ WITH first_exposure AS (
         WHEN (
           e.event IN ('page_load') AND e.ts >= f.first_ts
         )
-        AND (
-          ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
-        )
+        AND NOT TRY_CAST(e.latency_ms AS DECIMAL(28, 10)) IS NULL
         AND (
           e.latency_ms
         ) < 0
@@ -162,28 +130,18 @@ WITH first_exposure AS (
     ) AS dq_negative_page_latency,
     SUM(
       CASE
-        WHEN (
-          e.event IN ('page_load') AND NOT (
-            e.ts >= f.first_ts
-          )
+        WHEN e.event IN ('page_load') AND NOT (
+          e.ts >= f.first_ts
         )
-        AND (
-          ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
-        )
-        THEN TRY_CAST(e.latency_ms AS DECIMAL(38, 10))
+        THEN TRY_CAST(e.latency_ms AS DECIMAL(28, 10))
       END
     ) AS spre_page_latency,
     COUNT(
       CASE
-        WHEN (
-          e.event IN ('page_load') AND NOT (
-            e.ts >= f.first_ts
-          )
+        WHEN e.event IN ('page_load') AND NOT (
+          e.ts >= f.first_ts
         )
-        AND (
-          ABS(CAST(e.latency_ms AS DOUBLE)) < 1e+18
-        )
-        THEN 1
+        THEN TRY_CAST(e.latency_ms AS DECIMAL(28, 10))
       END
     ) AS cpre_page_latency,
     COUNT(
@@ -256,18 +214,18 @@ WITH first_exposure AS (
       e.ts >= f.first_ts
     ) THEN 1 END) AS spre_impressions,
     CASE
-      WHEN COUNT(CASE WHEN e.event = 'click' AND e.ts >= f.first_ts THEN 1 END) = 0
+      WHEN COUNT(CASE WHEN e.event IN ('click') AND e.ts >= f.first_ts THEN 1 END) = 0
       THEN 0
-      WHEN COUNT(CASE WHEN e.event = 'back' AND e.ts >= f.first_ts THEN 1 END) = 0
+      WHEN COUNT(CASE WHEN e.event IN ('back') AND e.ts >= f.first_ts THEN 1 END) = 0
       THEN 1
       WHEN ARRAY_LENGTH(
         LIST_FILTER(
           ARRAY_AGG(EPOCH_MS(e.ts)) FILTER(WHERE
-            e.event = 'click' AND e.ts >= f.first_ts),
+            e.event IN ('click') AND e.ts >= f.first_ts),
           LAMBDA c : ARRAY_LENGTH(
             LIST_FILTER(
               ARRAY_AGG(EPOCH_MS(e.ts)) FILTER(WHERE
-                e.event = 'back' AND e.ts >= f.first_ts),
+                e.event IN ('back') AND e.ts >= f.first_ts),
               LAMBDA b : b > c AND b <= (
                 c + 30000
               )
@@ -279,24 +237,24 @@ WITH first_exposure AS (
       ELSE 0
     END AS s_session_success,
     CASE
-      WHEN COUNT(CASE WHEN e.event = 'click' AND NOT (
+      WHEN COUNT(CASE WHEN e.event IN ('click') AND NOT (
         e.ts >= f.first_ts
       ) THEN 1 END) = 0
       THEN 0
-      WHEN COUNT(CASE WHEN e.event = 'back' AND NOT (
+      WHEN COUNT(CASE WHEN e.event IN ('back') AND NOT (
         e.ts >= f.first_ts
       ) THEN 1 END) = 0
       THEN 1
       WHEN ARRAY_LENGTH(
         LIST_FILTER(
           ARRAY_AGG(EPOCH_MS(e.ts)) FILTER(WHERE
-            e.event = 'click' AND NOT (
+            e.event IN ('click') AND NOT (
               e.ts >= f.first_ts
             )),
           LAMBDA c : ARRAY_LENGTH(
             LIST_FILTER(
               ARRAY_AGG(EPOCH_MS(e.ts)) FILTER(WHERE
-                e.event = 'back' AND NOT (
+                e.event IN ('back') AND NOT (
                   e.ts >= f.first_ts
                 )),
               LAMBDA b : b > c AND b <= (
@@ -311,13 +269,8 @@ WITH first_exposure AS (
     END AS spre_session_success,
     SUM(
       CASE
-        WHEN (
-          e.event IN ('purchase') AND e.ts >= f.first_ts
-        )
-        AND (
-          ABS(CAST(e.value AS DOUBLE)) < 1e+18
-        )
-        THEN TRY_CAST(e.value AS DECIMAL(38, 10))
+        WHEN e.event IN ('purchase') AND e.ts >= f.first_ts
+        THEN TRY_CAST(e.value AS DECIMAL(28, 10))
       END
     ) AS s_revenue_winsorised,
     COUNT(
@@ -328,9 +281,7 @@ WITH first_exposure AS (
         AND NOT (
           e.value
         ) IS NULL
-        AND NOT (
-          ABS(CAST(e.value AS DOUBLE)) < 1e+18
-        )
+        AND TRY_CAST(e.value AS DECIMAL(28, 10)) IS NULL
         THEN 1
       END
     ) AS dq_ignored_revenue_winsorised,
@@ -339,9 +290,7 @@ WITH first_exposure AS (
         WHEN (
           e.event IN ('purchase') AND e.ts >= f.first_ts
         )
-        AND (
-          ABS(CAST(e.value AS DOUBLE)) < 1e+18
-        )
+        AND NOT TRY_CAST(e.value AS DECIMAL(28, 10)) IS NULL
         AND (
           e.value
         ) < 0
@@ -350,15 +299,10 @@ WITH first_exposure AS (
     ) AS dq_negative_revenue_winsorised,
     SUM(
       CASE
-        WHEN (
-          e.event IN ('purchase') AND NOT (
-            e.ts >= f.first_ts
-          )
+        WHEN e.event IN ('purchase') AND NOT (
+          e.ts >= f.first_ts
         )
-        AND (
-          ABS(CAST(e.value AS DOUBLE)) < 1e+18
-        )
-        THEN TRY_CAST(e.value AS DECIMAL(38, 10))
+        THEN TRY_CAST(e.value AS DECIMAL(28, 10))
       END
     ) AS spre_revenue_winsorised
   FROM first_exposure AS f
@@ -377,61 +321,67 @@ WITH first_exposure AS (
     e.session_id
 ), units AS (
   SELECT
-    unit,
-    ANY_VALUE(variant) AS variant,
-    ANY_VALUE(n_variants) AS n_variants,
-    ANY_VALUE(first_ts) AS first_ts,
-    ANY_VALUE(dq_duplicate_exposures) AS dq_duplicate_exposures,
-    CAST(SUM(n_events) AS BIGINT) AS n_events,
-    MAX(n_events) AS max_session_events,
-    COUNT(session) AS n_sessions,
-    CAST(SUM(n_pre_events) AS BIGINT) AS n_pre_events,
-    BOOL_OR(CAST(bot_rule_0 AS BOOLEAN)) AS bot_rule_0,
-    CAST(SUM(dq_ignored_revenue) AS BIGINT) AS dq_ignored_revenue,
-    CAST(SUM(dq_negative_revenue) AS BIGINT) AS dq_negative_revenue,
-    CAST(SUM(dq_ignored_page_latency) AS BIGINT) AS dq_ignored_page_latency,
-    CAST(SUM(dq_negative_page_latency) AS BIGINT) AS dq_negative_page_latency,
-    CAST(SUM(dq_ignored_revenue_winsorised) AS BIGINT) AS dq_ignored_revenue_winsorised,
-    CAST(SUM(dq_negative_revenue_winsorised) AS BIGINT) AS dq_negative_revenue_winsorised,
-    CAST(COALESCE(SUM(s_revenue), 0) AS DOUBLE) AS u_revenue,
-    CAST(COALESCE(SUM(spre_revenue), 0) AS DOUBLE) AS upre_revenue,
-    CAST(COALESCE(SUM(s_unsubscribes), 0) AS BIGINT) AS u_unsubscribes,
-    CAST(COALESCE(SUM(spre_unsubscribes), 0) AS BIGINT) AS upre_unsubscribes,
-    CASE
-      WHEN SUM(c_page_latency) > 0
-      THEN CAST(SUM(s_page_latency) AS DOUBLE) / CAST(SUM(c_page_latency) AS DOUBLE)
-    END AS u_page_latency,
-    CASE
-      WHEN SUM(cpre_page_latency) > 0
-      THEN CAST(SUM(spre_page_latency) AS DOUBLE) / CAST(SUM(cpre_page_latency) AS DOUBLE)
-    END AS upre_page_latency,
-    CAST(COALESCE(SUM(s_page_latency_p95), 0) AS BIGINT) AS u_page_latency_p95,
-    LIST_SORT(
-      FLATTEN(ARRAY_AGG(l_page_latency_p95) FILTER(WHERE
-        NOT l_page_latency_p95 IS NULL))
-    ) AS l_page_latency_p95,
-    CAST(COALESCE(SUM(spre_page_latency_p95), 0) AS BIGINT) AS upre_page_latency_p95,
-    CAST(COALESCE(SUM(s_purchases), 0) AS BIGINT) AS u_purchases,
-    CAST(COALESCE(SUM(spre_purchases), 0) AS BIGINT) AS upre_purchases,
-    CAST(COALESCE(SUM(s_refunds), 0) AS BIGINT) AS u_refunds,
-    CAST(COALESCE(SUM(spre_refunds), 0) AS BIGINT) AS upre_refunds,
-    CASE WHEN COALESCE(SUM(s_buyer_share), 0) > 0 THEN 1 ELSE 0 END AS u_buyer_share,
-    CASE WHEN COALESCE(SUM(spre_buyer_share), 0) > 0 THEN 1 ELSE 0 END AS upre_buyer_share,
-    CAST(COALESCE(SUM(s_mobile_purchases), 0) AS BIGINT) AS u_mobile_purchases,
-    CAST(COALESCE(SUM(spre_mobile_purchases), 0) AS BIGINT) AS upre_mobile_purchases,
-    CAST(COALESCE(SUM(s_clicks), 0) AS BIGINT) AS u_clicks,
-    CAST(COALESCE(SUM(spre_clicks), 0) AS BIGINT) AS upre_clicks,
-    CAST(COALESCE(SUM(s_impressions), 0) AS BIGINT) AS u_impressions,
-    CAST(COALESCE(SUM(spre_impressions), 0) AS BIGINT) AS upre_impressions,
-    CAST(COALESCE(SUM(s_session_success), 0) AS BIGINT) AS u_session_success,
-    COUNT(CASE WHEN n_events > 0 THEN session END) AS d_session_success,
-    CAST(COALESCE(SUM(spre_session_success), 0) AS BIGINT) AS upre_session_success,
-    COUNT(CASE WHEN n_pre_events > 0 THEN session END) AS dpre_session_success,
-    CAST(COALESCE(SUM(s_revenue_winsorised), 0) AS DOUBLE) AS u_revenue_winsorised,
-    CAST(COALESCE(SUM(spre_revenue_winsorised), 0) AS DOUBLE) AS upre_revenue_winsorised
-  FROM sessions
-  GROUP BY
-    unit
+    f.variant,
+    f.two_variants,
+    f.first_ts,
+    f.dq_duplicate_exposures,
+    u.*
+  FROM (
+    SELECT
+      unit,
+      CAST(SUM(n_events) AS BIGINT) AS n_events,
+      MAX(n_events) AS max_session_events,
+      COUNT(session) AS n_sessions,
+      CAST(SUM(n_pre_events) AS BIGINT) AS n_pre_events,
+      BOOL_OR(CAST(bot_rule_0 AS BOOLEAN)) AS bot_rule_0,
+      CAST(SUM(dq_ignored_revenue) AS BIGINT) AS dq_ignored_revenue,
+      CAST(SUM(dq_negative_revenue) AS BIGINT) AS dq_negative_revenue,
+      CAST(SUM(dq_ignored_page_latency) AS BIGINT) AS dq_ignored_page_latency,
+      CAST(SUM(dq_negative_page_latency) AS BIGINT) AS dq_negative_page_latency,
+      CAST(SUM(dq_ignored_revenue_winsorised) AS BIGINT) AS dq_ignored_revenue_winsorised,
+      CAST(SUM(dq_negative_revenue_winsorised) AS BIGINT) AS dq_negative_revenue_winsorised,
+      CAST(COALESCE(SUM(s_revenue), 0) AS DOUBLE) AS u_revenue,
+      CAST(COALESCE(SUM(spre_revenue), 0) AS DOUBLE) AS upre_revenue,
+      CAST(COALESCE(SUM(s_unsubscribes), 0) AS BIGINT) AS u_unsubscribes,
+      CAST(COALESCE(SUM(spre_unsubscribes), 0) AS BIGINT) AS upre_unsubscribes,
+      CASE
+        WHEN SUM(c_page_latency) > 0
+        THEN CAST(SUM(s_page_latency) AS DOUBLE) / CAST(SUM(c_page_latency) AS DOUBLE)
+      END AS u_page_latency,
+      CASE
+        WHEN SUM(cpre_page_latency) > 0
+        THEN CAST(SUM(spre_page_latency) AS DOUBLE) / CAST(SUM(cpre_page_latency) AS DOUBLE)
+      END AS upre_page_latency,
+      CAST(COALESCE(SUM(s_page_latency_p95), 0) AS BIGINT) AS u_page_latency_p95,
+      LIST_SORT(
+        FLATTEN(ARRAY_AGG(l_page_latency_p95) FILTER(WHERE
+          NOT l_page_latency_p95 IS NULL))
+      ) AS l_page_latency_p95,
+      CAST(COALESCE(SUM(spre_page_latency_p95), 0) AS BIGINT) AS upre_page_latency_p95,
+      CAST(COALESCE(SUM(s_purchases), 0) AS BIGINT) AS u_purchases,
+      CAST(COALESCE(SUM(spre_purchases), 0) AS BIGINT) AS upre_purchases,
+      CAST(COALESCE(SUM(s_refunds), 0) AS BIGINT) AS u_refunds,
+      CAST(COALESCE(SUM(spre_refunds), 0) AS BIGINT) AS upre_refunds,
+      CASE WHEN COALESCE(SUM(s_buyer_share), 0) > 0 THEN 1 ELSE 0 END AS u_buyer_share,
+      CASE WHEN COALESCE(SUM(spre_buyer_share), 0) > 0 THEN 1 ELSE 0 END AS upre_buyer_share,
+      CAST(COALESCE(SUM(s_mobile_purchases), 0) AS BIGINT) AS u_mobile_purchases,
+      CAST(COALESCE(SUM(spre_mobile_purchases), 0) AS BIGINT) AS upre_mobile_purchases,
+      CAST(COALESCE(SUM(s_clicks), 0) AS BIGINT) AS u_clicks,
+      CAST(COALESCE(SUM(spre_clicks), 0) AS BIGINT) AS upre_clicks,
+      CAST(COALESCE(SUM(s_impressions), 0) AS BIGINT) AS u_impressions,
+      CAST(COALESCE(SUM(spre_impressions), 0) AS BIGINT) AS upre_impressions,
+      CAST(COALESCE(SUM(s_session_success), 0) AS BIGINT) AS u_session_success,
+      COUNT(CASE WHEN n_events > 0 THEN session END) AS d_session_success,
+      CAST(COALESCE(SUM(spre_session_success), 0) AS BIGINT) AS upre_session_success,
+      COUNT(CASE WHEN n_pre_events > 0 THEN session END) AS dpre_session_success,
+      CAST(COALESCE(SUM(s_revenue_winsorised), 0) AS DOUBLE) AS u_revenue_winsorised,
+      CAST(COALESCE(SUM(spre_revenue_winsorised), 0) AS DOUBLE) AS upre_revenue_winsorised
+    FROM sessions
+    GROUP BY
+      unit
+  ) AS u
+  JOIN first_exposure AS f
+    ON u.unit = f.unit
 )
 SELECT
   unit,
@@ -440,8 +390,8 @@ SELECT
   (
     COALESCE(bot_rule_0, FALSE) OR max_session_events > 60
   ) AS is_bot,
-  n_variants > 1 AS contaminated,
-  n_variants > 1 AS two_variants,
+  two_variants AS contaminated,
+  two_variants,
   first_ts,
   dq_duplicate_exposures,
   dq_ignored_revenue,
@@ -561,7 +511,7 @@ SELECT
   COUNT(x_buyer_share) AS buyer_share__n,
   AVG(x_buyer_share) AS buyer_share__mean_x,
   VARIANCE(x_buyer_share) AS buyer_share__var_x,
-  SUM(CAST(x_buyer_share AS BIGINT)) AS buyer_share__successes,
+  CAST(SUM(CAST(x_buyer_share AS BIGINT)) AS BIGINT) AS buyer_share__successes,
   COUNT(x_mobile_purchases) AS mobile_purchases__n,
   AVG(x_mobile_purchases) AS mobile_purchases__mean_x,
   VARIANCE(x_mobile_purchases) AS mobile_purchases__var_x,
@@ -642,13 +592,13 @@ ORDER BY
 SELECT
   variant,
   COUNT(*) AS n_units,
-  AVG(CAST(CASE WHEN is_bot THEN n_events ELSE 0 END AS DOUBLE) ORDER BY unit) AS mean_removed,
-  AVG(CAST(n_events AS DOUBLE) ORDER BY unit) AS mean_events,
-  VARIANCE(CAST(CASE WHEN is_bot THEN n_events ELSE 0 END AS DOUBLE) ORDER BY unit) AS var_removed,
-  VARIANCE(CAST(n_events AS DOUBLE) ORDER BY unit) AS var_events,
+  AVG(CAST(CASE WHEN is_bot THEN n_events ELSE 0 END AS DOUBLE)) AS mean_removed,
+  AVG(CAST(n_events AS DOUBLE)) AS mean_events,
+  VARIANCE(CAST(CASE WHEN is_bot THEN n_events ELSE 0 END AS DOUBLE)) AS var_removed,
+  VARIANCE(CAST(n_events AS DOUBLE)) AS var_events,
   COVAR_SAMP(
     CAST(CASE WHEN is_bot THEN n_events ELSE 0 END AS DOUBLE),
-    CAST(n_events AS DOUBLE) ORDER BY unit
+    CAST(n_events AS DOUBLE)
   ) AS cov_removed_events
 FROM unit_rows
 GROUP BY
@@ -751,75 +701,65 @@ WITH cap_values AS (
 SELECT
   variant,
   COUNT(CAST(x_revenue AS DOUBLE)) AS revenue__cv_n,
-  AVG(CAST(x_revenue AS DOUBLE) ORDER BY unit) AS revenue__cv_mean_x,
-  AVG(CAST(xpre_revenue AS DOUBLE) ORDER BY unit) AS revenue__cv_mean_c,
-  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS revenue__cv_mean_h,
-  VARIANCE(CAST(x_revenue AS DOUBLE) ORDER BY unit) AS revenue__cv_cov_x_x,
-  COVAR_SAMP(CAST(x_revenue AS DOUBLE), CAST(xpre_revenue AS DOUBLE) ORDER BY unit) AS revenue__cv_cov_x_c,
-  COVAR_SAMP(
-    CAST(x_revenue AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
-  ) AS revenue__cv_cov_x_h,
-  VARIANCE(CAST(xpre_revenue AS DOUBLE) ORDER BY unit) AS revenue__cv_cov_c_c,
-  COVAR_SAMP(
-    CAST(xpre_revenue AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
-  ) AS revenue__cv_cov_c_h,
-  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS revenue__cv_cov_h_h,
+  AVG(CAST(x_revenue AS DOUBLE)) AS revenue__cv_mean_x,
+  AVG(CAST(xpre_revenue AS DOUBLE)) AS revenue__cv_mean_c,
+  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS revenue__cv_mean_h,
+  VARIANCE(CAST(x_revenue AS DOUBLE)) AS revenue__cv_cov_x_x,
+  COVAR_SAMP(CAST(x_revenue AS DOUBLE), CAST(xpre_revenue AS DOUBLE)) AS revenue__cv_cov_x_c,
+  COVAR_SAMP(CAST(x_revenue AS DOUBLE), CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS revenue__cv_cov_x_h,
+  VARIANCE(CAST(xpre_revenue AS DOUBLE)) AS revenue__cv_cov_c_c,
+  COVAR_SAMP(CAST(xpre_revenue AS DOUBLE), CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS revenue__cv_cov_c_h,
+  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS revenue__cv_cov_h_h,
   COUNT(CAST(x_unsubscribes AS DOUBLE)) AS unsubscribes__cv_n,
-  AVG(CAST(x_unsubscribes AS DOUBLE) ORDER BY unit) AS unsubscribes__cv_mean_x,
-  AVG(CAST(xpre_unsubscribes AS DOUBLE) ORDER BY unit) AS unsubscribes__cv_mean_c,
-  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS unsubscribes__cv_mean_h,
-  VARIANCE(CAST(x_unsubscribes AS DOUBLE) ORDER BY unit) AS unsubscribes__cv_cov_x_x,
-  COVAR_SAMP(CAST(x_unsubscribes AS DOUBLE), CAST(xpre_unsubscribes AS DOUBLE) ORDER BY unit) AS unsubscribes__cv_cov_x_c,
+  AVG(CAST(x_unsubscribes AS DOUBLE)) AS unsubscribes__cv_mean_x,
+  AVG(CAST(xpre_unsubscribes AS DOUBLE)) AS unsubscribes__cv_mean_c,
+  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS unsubscribes__cv_mean_h,
+  VARIANCE(CAST(x_unsubscribes AS DOUBLE)) AS unsubscribes__cv_cov_x_x,
+  COVAR_SAMP(CAST(x_unsubscribes AS DOUBLE), CAST(xpre_unsubscribes AS DOUBLE)) AS unsubscribes__cv_cov_x_c,
   COVAR_SAMP(
     CAST(x_unsubscribes AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS unsubscribes__cv_cov_x_h,
-  VARIANCE(CAST(xpre_unsubscribes AS DOUBLE) ORDER BY unit) AS unsubscribes__cv_cov_c_c,
+  VARIANCE(CAST(xpre_unsubscribes AS DOUBLE)) AS unsubscribes__cv_cov_c_c,
   COVAR_SAMP(
     CAST(xpre_unsubscribes AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS unsubscribes__cv_cov_c_h,
-  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS unsubscribes__cv_cov_h_h,
+  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS unsubscribes__cv_cov_h_h,
   COUNT(CAST(CASE WHEN NOT x_page_latency IS NULL THEN x_page_latency END AS DOUBLE)) AS page_latency__cv_n,
-  AVG(
-    CAST(CASE WHEN NOT x_page_latency IS NULL THEN x_page_latency END AS DOUBLE) ORDER BY unit
-  ) AS page_latency__cv_mean_x,
+  AVG(CAST(CASE WHEN NOT x_page_latency IS NULL THEN x_page_latency END AS DOUBLE)) AS page_latency__cv_mean_x,
   AVG(
     CAST(CASE
       WHEN NOT x_page_latency IS NULL
       THEN COALESCE(xpre_page_latency, CAST(0.0 AS DOUBLE))
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS page_latency__cv_mean_c,
   AVG(
     CAST(CASE
       WHEN NOT x_page_latency IS NULL
       THEN CASE WHEN NOT xpre_page_latency IS NULL THEN 1 ELSE 0 END
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS page_latency__cv_mean_h,
-  VARIANCE(
-    CAST(CASE WHEN NOT x_page_latency IS NULL THEN x_page_latency END AS DOUBLE) ORDER BY unit
-  ) AS page_latency__cv_cov_x_x,
+  VARIANCE(CAST(CASE WHEN NOT x_page_latency IS NULL THEN x_page_latency END AS DOUBLE)) AS page_latency__cv_cov_x_x,
   COVAR_SAMP(
     CAST(CASE WHEN NOT x_page_latency IS NULL THEN x_page_latency END AS DOUBLE),
     CAST(CASE
       WHEN NOT x_page_latency IS NULL
       THEN COALESCE(xpre_page_latency, CAST(0.0 AS DOUBLE))
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS page_latency__cv_cov_x_c,
   COVAR_SAMP(
     CAST(CASE WHEN NOT x_page_latency IS NULL THEN x_page_latency END AS DOUBLE),
     CAST(CASE
       WHEN NOT x_page_latency IS NULL
       THEN CASE WHEN NOT xpre_page_latency IS NULL THEN 1 ELSE 0 END
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS page_latency__cv_cov_x_h,
   VARIANCE(
     CAST(CASE
       WHEN NOT x_page_latency IS NULL
       THEN COALESCE(xpre_page_latency, CAST(0.0 AS DOUBLE))
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS page_latency__cv_cov_c_c,
   COVAR_SAMP(
     CAST(CASE
@@ -829,181 +769,145 @@ SELECT
     CAST(CASE
       WHEN NOT x_page_latency IS NULL
       THEN CASE WHEN NOT xpre_page_latency IS NULL THEN 1 ELSE 0 END
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS page_latency__cv_cov_c_h,
   VARIANCE(
     CAST(CASE
       WHEN NOT x_page_latency IS NULL
       THEN CASE WHEN NOT xpre_page_latency IS NULL THEN 1 ELSE 0 END
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS page_latency__cv_cov_h_h,
   COUNT(CAST(x_purchases AS DOUBLE)) AS purchases__cv_n,
-  AVG(CAST(x_purchases AS DOUBLE) ORDER BY unit) AS purchases__cv_mean_x,
-  AVG(CAST(xpre_purchases AS DOUBLE) ORDER BY unit) AS purchases__cv_mean_c,
-  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS purchases__cv_mean_h,
-  VARIANCE(CAST(x_purchases AS DOUBLE) ORDER BY unit) AS purchases__cv_cov_x_x,
-  COVAR_SAMP(CAST(x_purchases AS DOUBLE), CAST(xpre_purchases AS DOUBLE) ORDER BY unit) AS purchases__cv_cov_x_c,
-  COVAR_SAMP(
-    CAST(x_purchases AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
-  ) AS purchases__cv_cov_x_h,
-  VARIANCE(CAST(xpre_purchases AS DOUBLE) ORDER BY unit) AS purchases__cv_cov_c_c,
+  AVG(CAST(x_purchases AS DOUBLE)) AS purchases__cv_mean_x,
+  AVG(CAST(xpre_purchases AS DOUBLE)) AS purchases__cv_mean_c,
+  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS purchases__cv_mean_h,
+  VARIANCE(CAST(x_purchases AS DOUBLE)) AS purchases__cv_cov_x_x,
+  COVAR_SAMP(CAST(x_purchases AS DOUBLE), CAST(xpre_purchases AS DOUBLE)) AS purchases__cv_cov_x_c,
+  COVAR_SAMP(CAST(x_purchases AS DOUBLE), CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS purchases__cv_cov_x_h,
+  VARIANCE(CAST(xpre_purchases AS DOUBLE)) AS purchases__cv_cov_c_c,
   COVAR_SAMP(
     CAST(xpre_purchases AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS purchases__cv_cov_c_h,
-  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS purchases__cv_cov_h_h,
+  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS purchases__cv_cov_h_h,
   COUNT(CAST(x_refunds AS DOUBLE)) AS refunds__cv_n,
-  AVG(CAST(x_refunds AS DOUBLE) ORDER BY unit) AS refunds__cv_mean_x,
-  AVG(CAST(xpre_refunds AS DOUBLE) ORDER BY unit) AS refunds__cv_mean_c,
-  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS refunds__cv_mean_h,
-  VARIANCE(CAST(x_refunds AS DOUBLE) ORDER BY unit) AS refunds__cv_cov_x_x,
-  COVAR_SAMP(CAST(x_refunds AS DOUBLE), CAST(xpre_refunds AS DOUBLE) ORDER BY unit) AS refunds__cv_cov_x_c,
-  COVAR_SAMP(
-    CAST(x_refunds AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
-  ) AS refunds__cv_cov_x_h,
-  VARIANCE(CAST(xpre_refunds AS DOUBLE) ORDER BY unit) AS refunds__cv_cov_c_c,
-  COVAR_SAMP(
-    CAST(xpre_refunds AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
-  ) AS refunds__cv_cov_c_h,
-  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS refunds__cv_cov_h_h,
+  AVG(CAST(x_refunds AS DOUBLE)) AS refunds__cv_mean_x,
+  AVG(CAST(xpre_refunds AS DOUBLE)) AS refunds__cv_mean_c,
+  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS refunds__cv_mean_h,
+  VARIANCE(CAST(x_refunds AS DOUBLE)) AS refunds__cv_cov_x_x,
+  COVAR_SAMP(CAST(x_refunds AS DOUBLE), CAST(xpre_refunds AS DOUBLE)) AS refunds__cv_cov_x_c,
+  COVAR_SAMP(CAST(x_refunds AS DOUBLE), CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS refunds__cv_cov_x_h,
+  VARIANCE(CAST(xpre_refunds AS DOUBLE)) AS refunds__cv_cov_c_c,
+  COVAR_SAMP(CAST(xpre_refunds AS DOUBLE), CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS refunds__cv_cov_c_h,
+  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS refunds__cv_cov_h_h,
   COUNT(CAST(x_buyer_share AS DOUBLE)) AS buyer_share__cv_n,
-  AVG(CAST(x_buyer_share AS DOUBLE) ORDER BY unit) AS buyer_share__cv_mean_x,
-  AVG(CAST(xpre_buyer_share AS DOUBLE) ORDER BY unit) AS buyer_share__cv_mean_c,
-  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS buyer_share__cv_mean_h,
-  VARIANCE(CAST(x_buyer_share AS DOUBLE) ORDER BY unit) AS buyer_share__cv_cov_x_x,
-  COVAR_SAMP(CAST(x_buyer_share AS DOUBLE), CAST(xpre_buyer_share AS DOUBLE) ORDER BY unit) AS buyer_share__cv_cov_x_c,
-  COVAR_SAMP(
-    CAST(x_buyer_share AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
-  ) AS buyer_share__cv_cov_x_h,
-  VARIANCE(CAST(xpre_buyer_share AS DOUBLE) ORDER BY unit) AS buyer_share__cv_cov_c_c,
+  AVG(CAST(x_buyer_share AS DOUBLE)) AS buyer_share__cv_mean_x,
+  AVG(CAST(xpre_buyer_share AS DOUBLE)) AS buyer_share__cv_mean_c,
+  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS buyer_share__cv_mean_h,
+  VARIANCE(CAST(x_buyer_share AS DOUBLE)) AS buyer_share__cv_cov_x_x,
+  COVAR_SAMP(CAST(x_buyer_share AS DOUBLE), CAST(xpre_buyer_share AS DOUBLE)) AS buyer_share__cv_cov_x_c,
+  COVAR_SAMP(CAST(x_buyer_share AS DOUBLE), CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS buyer_share__cv_cov_x_h,
+  VARIANCE(CAST(xpre_buyer_share AS DOUBLE)) AS buyer_share__cv_cov_c_c,
   COVAR_SAMP(
     CAST(xpre_buyer_share AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS buyer_share__cv_cov_c_h,
-  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS buyer_share__cv_cov_h_h,
+  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS buyer_share__cv_cov_h_h,
   COUNT(CAST(x_mobile_purchases AS DOUBLE)) AS mobile_purchases__cv_n,
-  AVG(CAST(x_mobile_purchases AS DOUBLE) ORDER BY unit) AS mobile_purchases__cv_mean_x,
-  AVG(CAST(xpre_mobile_purchases AS DOUBLE) ORDER BY unit) AS mobile_purchases__cv_mean_c,
-  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS mobile_purchases__cv_mean_h,
-  VARIANCE(CAST(x_mobile_purchases AS DOUBLE) ORDER BY unit) AS mobile_purchases__cv_cov_x_x,
+  AVG(CAST(x_mobile_purchases AS DOUBLE)) AS mobile_purchases__cv_mean_x,
+  AVG(CAST(xpre_mobile_purchases AS DOUBLE)) AS mobile_purchases__cv_mean_c,
+  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS mobile_purchases__cv_mean_h,
+  VARIANCE(CAST(x_mobile_purchases AS DOUBLE)) AS mobile_purchases__cv_cov_x_x,
+  COVAR_SAMP(CAST(x_mobile_purchases AS DOUBLE), CAST(xpre_mobile_purchases AS DOUBLE)) AS mobile_purchases__cv_cov_x_c,
   COVAR_SAMP(
     CAST(x_mobile_purchases AS DOUBLE),
-    CAST(xpre_mobile_purchases AS DOUBLE) ORDER BY unit
-  ) AS mobile_purchases__cv_cov_x_c,
-  COVAR_SAMP(
-    CAST(x_mobile_purchases AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS mobile_purchases__cv_cov_x_h,
-  VARIANCE(CAST(xpre_mobile_purchases AS DOUBLE) ORDER BY unit) AS mobile_purchases__cv_cov_c_c,
+  VARIANCE(CAST(xpre_mobile_purchases AS DOUBLE)) AS mobile_purchases__cv_cov_c_c,
   COVAR_SAMP(
     CAST(xpre_mobile_purchases AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS mobile_purchases__cv_cov_c_h,
-  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS mobile_purchases__cv_cov_h_h,
+  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS mobile_purchases__cv_cov_h_h,
   COUNT(CAST(x_click_through AS DOUBLE)) AS click_through__cv_n,
-  AVG(CAST(x_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_mean_x,
-  AVG(CAST(y_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_mean_y,
-  AVG(CAST(xpre_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_mean_xpre,
-  AVG(CAST(ypre_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_mean_ypre,
-  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS click_through__cv_mean_h,
-  VARIANCE(CAST(x_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_cov_x_x,
-  COVAR_SAMP(CAST(x_click_through AS DOUBLE), CAST(y_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_cov_x_y,
-  COVAR_SAMP(CAST(x_click_through AS DOUBLE), CAST(xpre_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_cov_x_xpre,
-  COVAR_SAMP(CAST(x_click_through AS DOUBLE), CAST(ypre_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_cov_x_ypre,
+  AVG(CAST(x_click_through AS DOUBLE)) AS click_through__cv_mean_x,
+  AVG(CAST(y_click_through AS DOUBLE)) AS click_through__cv_mean_y,
+  AVG(CAST(xpre_click_through AS DOUBLE)) AS click_through__cv_mean_xpre,
+  AVG(CAST(ypre_click_through AS DOUBLE)) AS click_through__cv_mean_ypre,
+  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS click_through__cv_mean_h,
+  VARIANCE(CAST(x_click_through AS DOUBLE)) AS click_through__cv_cov_x_x,
+  COVAR_SAMP(CAST(x_click_through AS DOUBLE), CAST(y_click_through AS DOUBLE)) AS click_through__cv_cov_x_y,
+  COVAR_SAMP(CAST(x_click_through AS DOUBLE), CAST(xpre_click_through AS DOUBLE)) AS click_through__cv_cov_x_xpre,
+  COVAR_SAMP(CAST(x_click_through AS DOUBLE), CAST(ypre_click_through AS DOUBLE)) AS click_through__cv_cov_x_ypre,
   COVAR_SAMP(
     CAST(x_click_through AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS click_through__cv_cov_x_h,
-  VARIANCE(CAST(y_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_cov_y_y,
-  COVAR_SAMP(CAST(y_click_through AS DOUBLE), CAST(xpre_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_cov_y_xpre,
-  COVAR_SAMP(CAST(y_click_through AS DOUBLE), CAST(ypre_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_cov_y_ypre,
+  VARIANCE(CAST(y_click_through AS DOUBLE)) AS click_through__cv_cov_y_y,
+  COVAR_SAMP(CAST(y_click_through AS DOUBLE), CAST(xpre_click_through AS DOUBLE)) AS click_through__cv_cov_y_xpre,
+  COVAR_SAMP(CAST(y_click_through AS DOUBLE), CAST(ypre_click_through AS DOUBLE)) AS click_through__cv_cov_y_ypre,
   COVAR_SAMP(
     CAST(y_click_through AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS click_through__cv_cov_y_h,
-  VARIANCE(CAST(xpre_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_cov_xpre_xpre,
+  VARIANCE(CAST(xpre_click_through AS DOUBLE)) AS click_through__cv_cov_xpre_xpre,
+  COVAR_SAMP(CAST(xpre_click_through AS DOUBLE), CAST(ypre_click_through AS DOUBLE)) AS click_through__cv_cov_xpre_ypre,
   COVAR_SAMP(
     CAST(xpre_click_through AS DOUBLE),
-    CAST(ypre_click_through AS DOUBLE) ORDER BY unit
-  ) AS click_through__cv_cov_xpre_ypre,
-  COVAR_SAMP(
-    CAST(xpre_click_through AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS click_through__cv_cov_xpre_h,
-  VARIANCE(CAST(ypre_click_through AS DOUBLE) ORDER BY unit) AS click_through__cv_cov_ypre_ypre,
+  VARIANCE(CAST(ypre_click_through AS DOUBLE)) AS click_through__cv_cov_ypre_ypre,
   COVAR_SAMP(
     CAST(ypre_click_through AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS click_through__cv_cov_ypre_h,
-  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS click_through__cv_cov_h_h,
+  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS click_through__cv_cov_h_h,
   COUNT(CAST(x_session_success AS DOUBLE)) AS session_success__cv_n,
-  AVG(CAST(x_session_success AS DOUBLE) ORDER BY unit) AS session_success__cv_mean_x,
-  AVG(CAST(y_session_success AS DOUBLE) ORDER BY unit) AS session_success__cv_mean_y,
-  AVG(CAST(xpre_session_success AS DOUBLE) ORDER BY unit) AS session_success__cv_mean_xpre,
-  AVG(CAST(ypre_session_success AS DOUBLE) ORDER BY unit) AS session_success__cv_mean_ypre,
-  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS session_success__cv_mean_h,
-  VARIANCE(CAST(x_session_success AS DOUBLE) ORDER BY unit) AS session_success__cv_cov_x_x,
-  COVAR_SAMP(CAST(x_session_success AS DOUBLE), CAST(y_session_success AS DOUBLE) ORDER BY unit) AS session_success__cv_cov_x_y,
+  AVG(CAST(x_session_success AS DOUBLE)) AS session_success__cv_mean_x,
+  AVG(CAST(y_session_success AS DOUBLE)) AS session_success__cv_mean_y,
+  AVG(CAST(xpre_session_success AS DOUBLE)) AS session_success__cv_mean_xpre,
+  AVG(CAST(ypre_session_success AS DOUBLE)) AS session_success__cv_mean_ypre,
+  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS session_success__cv_mean_h,
+  VARIANCE(CAST(x_session_success AS DOUBLE)) AS session_success__cv_cov_x_x,
+  COVAR_SAMP(CAST(x_session_success AS DOUBLE), CAST(y_session_success AS DOUBLE)) AS session_success__cv_cov_x_y,
+  COVAR_SAMP(CAST(x_session_success AS DOUBLE), CAST(xpre_session_success AS DOUBLE)) AS session_success__cv_cov_x_xpre,
+  COVAR_SAMP(CAST(x_session_success AS DOUBLE), CAST(ypre_session_success AS DOUBLE)) AS session_success__cv_cov_x_ypre,
   COVAR_SAMP(
     CAST(x_session_success AS DOUBLE),
-    CAST(xpre_session_success AS DOUBLE) ORDER BY unit
-  ) AS session_success__cv_cov_x_xpre,
-  COVAR_SAMP(
-    CAST(x_session_success AS DOUBLE),
-    CAST(ypre_session_success AS DOUBLE) ORDER BY unit
-  ) AS session_success__cv_cov_x_ypre,
-  COVAR_SAMP(
-    CAST(x_session_success AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS session_success__cv_cov_x_h,
-  VARIANCE(CAST(y_session_success AS DOUBLE) ORDER BY unit) AS session_success__cv_cov_y_y,
+  VARIANCE(CAST(y_session_success AS DOUBLE)) AS session_success__cv_cov_y_y,
+  COVAR_SAMP(CAST(y_session_success AS DOUBLE), CAST(xpre_session_success AS DOUBLE)) AS session_success__cv_cov_y_xpre,
+  COVAR_SAMP(CAST(y_session_success AS DOUBLE), CAST(ypre_session_success AS DOUBLE)) AS session_success__cv_cov_y_ypre,
   COVAR_SAMP(
     CAST(y_session_success AS DOUBLE),
-    CAST(xpre_session_success AS DOUBLE) ORDER BY unit
-  ) AS session_success__cv_cov_y_xpre,
-  COVAR_SAMP(
-    CAST(y_session_success AS DOUBLE),
-    CAST(ypre_session_success AS DOUBLE) ORDER BY unit
-  ) AS session_success__cv_cov_y_ypre,
-  COVAR_SAMP(
-    CAST(y_session_success AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS session_success__cv_cov_y_h,
-  VARIANCE(CAST(xpre_session_success AS DOUBLE) ORDER BY unit) AS session_success__cv_cov_xpre_xpre,
+  VARIANCE(CAST(xpre_session_success AS DOUBLE)) AS session_success__cv_cov_xpre_xpre,
+  COVAR_SAMP(CAST(xpre_session_success AS DOUBLE), CAST(ypre_session_success AS DOUBLE)) AS session_success__cv_cov_xpre_ypre,
   COVAR_SAMP(
     CAST(xpre_session_success AS DOUBLE),
-    CAST(ypre_session_success AS DOUBLE) ORDER BY unit
-  ) AS session_success__cv_cov_xpre_ypre,
-  COVAR_SAMP(
-    CAST(xpre_session_success AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS session_success__cv_cov_xpre_h,
-  VARIANCE(CAST(ypre_session_success AS DOUBLE) ORDER BY unit) AS session_success__cv_cov_ypre_ypre,
+  VARIANCE(CAST(ypre_session_success AS DOUBLE)) AS session_success__cv_cov_ypre_ypre,
   COVAR_SAMP(
     CAST(ypre_session_success AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS session_success__cv_cov_ypre_h,
-  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS session_success__cv_cov_h_h,
+  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS session_success__cv_cov_h_h,
   COUNT(CAST(x_net_value AS DOUBLE)) AS net_value__cv_n,
-  AVG(CAST(x_net_value AS DOUBLE) ORDER BY unit) AS net_value__cv_mean_x,
-  AVG(CAST(xpre_net_value AS DOUBLE) ORDER BY unit) AS net_value__cv_mean_c,
-  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS net_value__cv_mean_h,
-  VARIANCE(CAST(x_net_value AS DOUBLE) ORDER BY unit) AS net_value__cv_cov_x_x,
-  COVAR_SAMP(CAST(x_net_value AS DOUBLE), CAST(xpre_net_value AS DOUBLE) ORDER BY unit) AS net_value__cv_cov_x_c,
-  COVAR_SAMP(
-    CAST(x_net_value AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
-  ) AS net_value__cv_cov_x_h,
-  VARIANCE(CAST(xpre_net_value AS DOUBLE) ORDER BY unit) AS net_value__cv_cov_c_c,
+  AVG(CAST(x_net_value AS DOUBLE)) AS net_value__cv_mean_x,
+  AVG(CAST(xpre_net_value AS DOUBLE)) AS net_value__cv_mean_c,
+  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS net_value__cv_mean_h,
+  VARIANCE(CAST(x_net_value AS DOUBLE)) AS net_value__cv_cov_x_x,
+  COVAR_SAMP(CAST(x_net_value AS DOUBLE), CAST(xpre_net_value AS DOUBLE)) AS net_value__cv_cov_x_c,
+  COVAR_SAMP(CAST(x_net_value AS DOUBLE), CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS net_value__cv_cov_x_h,
+  VARIANCE(CAST(xpre_net_value AS DOUBLE)) AS net_value__cv_cov_c_c,
   COVAR_SAMP(
     CAST(xpre_net_value AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS net_value__cv_cov_c_h,
-  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS net_value__cv_cov_h_h,
+  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS net_value__cv_cov_h_h,
   COUNT(
     CAST(CASE
       WHEN x_revenue_winsorised > caps.revenue_winsorised__cap
@@ -1016,22 +920,22 @@ SELECT
       WHEN x_revenue_winsorised > caps.revenue_winsorised__cap
       THEN caps.revenue_winsorised__cap
       ELSE x_revenue_winsorised
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS revenue_winsorised__cv_mean_x,
   AVG(
     CAST(CASE
       WHEN xpre_revenue_winsorised > caps.revenue_winsorised__cap_pre
       THEN caps.revenue_winsorised__cap_pre
       ELSE xpre_revenue_winsorised
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS revenue_winsorised__cv_mean_c,
-  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS revenue_winsorised__cv_mean_h,
+  AVG(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS revenue_winsorised__cv_mean_h,
   VARIANCE(
     CAST(CASE
       WHEN x_revenue_winsorised > caps.revenue_winsorised__cap
       THEN caps.revenue_winsorised__cap
       ELSE x_revenue_winsorised
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS revenue_winsorised__cv_cov_x_x,
   COVAR_SAMP(
     CAST(CASE
@@ -1043,7 +947,7 @@ SELECT
       WHEN xpre_revenue_winsorised > caps.revenue_winsorised__cap_pre
       THEN caps.revenue_winsorised__cap_pre
       ELSE xpre_revenue_winsorised
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS revenue_winsorised__cv_cov_x_c,
   COVAR_SAMP(
     CAST(CASE
@@ -1051,14 +955,14 @@ SELECT
       THEN caps.revenue_winsorised__cap
       ELSE x_revenue_winsorised
     END AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS revenue_winsorised__cv_cov_x_h,
   VARIANCE(
     CAST(CASE
       WHEN xpre_revenue_winsorised > caps.revenue_winsorised__cap_pre
       THEN caps.revenue_winsorised__cap_pre
       ELSE xpre_revenue_winsorised
-    END AS DOUBLE) ORDER BY unit
+    END AS DOUBLE)
   ) AS revenue_winsorised__cv_cov_c_c,
   COVAR_SAMP(
     CAST(CASE
@@ -1066,9 +970,9 @@ SELECT
       THEN caps.revenue_winsorised__cap_pre
       ELSE xpre_revenue_winsorised
     END AS DOUBLE),
-    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit
+    CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)
   ) AS revenue_winsorised__cv_cov_c_h,
-  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE) ORDER BY unit) AS revenue_winsorised__cv_cov_h_h
+  VARIANCE(CAST(CASE WHEN has_pre THEN 1 ELSE 0 END AS DOUBLE)) AS revenue_winsorised__cv_cov_h_h
 FROM unit_rows
 CROSS JOIN caps
 WHERE
