@@ -148,7 +148,7 @@ def contrast_weights(spec: dict[str, Any]) -> dict[str, dict[str, float]]:
     other level minus the mean of the two at the control's level; interaction
     = (μ11 − μ10) − (μ01 − μ00)."""
     control, factors = spec["experiment"]["control"], spec["factors"]
-    (f, f_levels), (g, g_levels) = factors.items()
+    f, g = factors
     other = {
         name: {v: level != levels[control] for v, level in levels.items()}
         for name, levels in factors.items()
@@ -157,7 +157,7 @@ def contrast_weights(spec: dict[str, Any]) -> dict[str, dict[str, float]]:
         f"main:{name}": {v: 0.5 if up else -0.5 for v, up in other[name].items()} for name in (f, g)
     }
     weights[f"interaction:{f}*{g}"] = {
-        v: 1.0 if other[f][v] == other[g][v] else -1.0 for v in f_levels
+        v: 1.0 if other[f][v] == other[g][v] else -1.0 for v in factors[f]
     }
     return weights
 
