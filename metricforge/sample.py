@@ -2,9 +2,9 @@
 
 People browse, click, return to the previous page ("back"), buy, get refunds and
 unsubscribe from the newsletter; bots crawl, scrape and click in bursts (``sample_bots``).
-A 14-day pre-period is followed by the experiment days, on which four experiments run on
-all traffic at once, assigned per cookie by a salted hash of the cookie id. The same
-arguments give byte-identical files.
+A 14-day pre-period is followed by the experiment days, on which five experiments run on
+all traffic at once, assigned per cookie by a salted hash of the cookie id; one of them,
+``product_cards``, is a 2×2 factorial design. The same arguments give byte-identical files.
 """
 
 from __future__ import annotations
@@ -19,18 +19,31 @@ from pathlib import Path
 from typing import Final
 
 import numpy as np
+import numpy.typing as npt
 
 from metricforge import sample_bots as sb
 from metricforge.errors import InputDataError
 from metricforge.sample_bots import Events, FloatArray, IntArray, Sessions
+
+BoolArray = npt.NDArray[np.bool_]
 
 DEFAULT_USERS: Final = 34_000
 PRE_DAYS: Final = 14
 START: Final = dt.datetime(2026, 9, 1)
 BOT_SHARE_TARGET: Final = 0.40
 SESSION_EVENT_LIMIT_HINT: Final = 60
-EXPERIMENTS: Final = ("checkout_layout", "homepage_aa", "promo_banner", "image_autoload")
-VARIANTS: Final = ("control", "treatment")
+EXPERIMENTS: Final = (
+    "checkout_layout",
+    "homepage_aa",
+    "promo_banner",
+    "image_autoload",
+    "product_cards",
+)
+CARDS: Final = ("control", "wide_photo", "price_badge", "wide_photo_badge")
+ARMS: Final = {
+    name: CARDS if name == "product_cards" else ("control", "treatment") for name in EXPERIMENTS
+}
+VARIANTS: Final = ("control", "treatment", *CARDS[1:])  # the exposure log's variant names
 OWNED: Final = frozenset({"events", "exposures.parquet", "TRUE_EFFECTS.json"})
 _DATE_DIR: Final = r"date=\d{4}-\d{2}-\d{2}"
 EVENT_SCHEMA: Final = sb.EVENT_SCHEMA
@@ -55,6 +68,17 @@ CHECKOUT_PURCHASE_LIFT, CHECKOUT_UNSUBSCRIBE_LIFT = 1.10, 1.50
 AUTOLOAD_SHARE: Final = 0.15  # of treatment sessions
 AUTOLOAD_EXTRA: Final = (60, 80)  # extra page_loads in such a session
 PROMO_DROP_SHARE: Final = 0.10  # of promo_banner treatment cookies: exposures never logged
+# product_cards, a 2×2 design: a wider product photo (factor photo) and a price badge
+# (factor badge) on the listing cards. Per CARDS arm, the share of clicks followed by a back
+# within 30 s (the rest of BAD_CLICK_SHARE goes back later): the photo shows what the click
+# leads to, so fewer clicks end in a quick return; the badge helps less, and it covers part
+# of the wide photo, so both together do worse than the wide photo alone.
+QUICK_BACK_SHARE: Final = (BAD_CLICK_SHARE, 0.20, 0.27, 0.24)
+CARD_FACTORS: Final = {
+    "photo": dict(zip(CARDS, ("standard", "wide", "standard", "wide"), strict=True)),
+    "badge": dict(zip(CARDS, ("none", "none", "shown", "shown"), strict=True)),
+}
+DWELL_MS: Final = 30_000  # a back at most this long after a click makes it unsuccessful
 
 # blocks of a human session, in time order within a page slot: a page load, the autoloaded
 # page loads, impressions (each with its click and back); then the end of the session
@@ -86,9 +110,14 @@ def _unit_hash(salt: str, unit: str) -> float:
     return int.from_bytes(digest[:8], "big") / 2.0**64
 
 
+def _arm_of(experiment: str, unit: str) -> int:
+    arms = ARMS[experiment]
+    return int(_unit_hash(experiment, unit) * len(arms))  # equal shares of the hash range
+
+
 def variant_of(experiment: str, unit: str) -> str:
     """The variant a cookie is assigned to: a salted hash, independent across experiments."""
-    return VARIANTS[_unit_hash(experiment, unit) >= 0.5]
+    return ARMS[experiment][_arm_of(experiment, unit)]
 
 
 def exposure_logged(experiment: str, unit: str) -> bool:
@@ -98,8 +127,9 @@ def exposure_logged(experiment: str, unit: str) -> bool:
     return _unit_hash("promo_banner/logging-bug", unit) >= PROMO_DROP_SHARE
 
 
-def _treated(cookies: list[str], experiment: str) -> IntArray:
-    return np.array([variant_of(experiment, c) == "treatment" for c in cookies], dtype=np.int64)
+def _arms(cookies: list[str], experiment: str) -> IntArray:
+    """Each cookie's arm: its variant's position in ``ARMS[experiment]``."""
+    return np.array([_arm_of(experiment, c) for c in cookies], dtype=np.int64)
 
 
 def _people(
@@ -144,15 +174,41 @@ def _blocks(
     return out.astype(np.int64)
 
 
+def _back_kind(u: FloatArray, quick: FloatArray | float) -> IntArray:
+    """Per click: 1 a back within 30 s (with probability ``quick``), 2 a later back, 0 none."""
+    late = BAD_CLICK_SHARE + LATE_BACK_SHARE
+    out: IntArray = np.where(u < quick, 1, np.where(u < late, 2, 0))
+    return out
+
+
+def _gaps(draws: FloatArray, back: IntArray, kind: IntArray, pos: IntArray) -> IntArray:
+    """Per event the milliseconds since the previous one; ``back``: the back kind of its block."""
+    impression = np.array([2, 3, 3])[pos] + (pos == 2) * back
+    gap_class = np.where(kind == _IMP, impression, _BLOCK_GAP[kind])
+    return sb.scaled_ints(draws, _GAPS[gap_class, 0], _GAPS[gap_class, 1])
+
+
+def _successful(session: IntArray, event: IntArray, ts: IntArray, n: int) -> BoolArray:
+    """Per session: a click with no back within ``DWELL_MS`` after it (session_success)."""
+    clicks, backs = np.flatnonzero(event == sb.CLICK), np.flatnonzero(event == sb.BACK)
+    nxt = np.r_[backs, len(event)][np.searchsorted(backs, clicks)]  # next back, or none
+    same = np.r_[session, -1][nxt] == session[clicks]
+    quick = same & (np.r_[ts, 0][nxt] - ts[clicks] <= DWELL_MS)
+    out: BoolArray = np.bincount(session[clicks[~quick]], minlength=n) > 0
+    return out
+
+
 def _humans(
     rng: np.random.Generator, people: Sessions, traits: tuple[IntArray, FloatArray, FloatArray]
-) -> tuple[Events, IntArray]:
-    """The events of every human session, vectorised over sessions; and the autoload flags."""
+) -> tuple[Events, IntArray, list[float]]:
+    """The events of every human session, vectorised over sessions; the autoload flags; and
+    the session_success of the experiment days under each product_cards arm."""
     (day, click_p, buy_p), cookie = traits, people.cookie
     n = len(day)
     in_exp = day >= PRE_DAYS
-    checkout = in_exp & (_treated(people.cookies, "checkout_layout")[cookie] == 1)
-    autoload = in_exp & (_treated(people.cookies, "image_autoload")[cookie] == 1)
+    checkout = in_exp & (_arms(people.cookies, "checkout_layout")[cookie] == 1)
+    autoload = in_exp & (_arms(people.cookies, "image_autoload")[cookie] == 1)
+    cards = np.where(in_exp, _arms(people.cookies, "product_cards")[cookie], 0)
     autoload &= rng.random(n) < AUTOLOAD_SHARE
     hour = rng.choice(len(HOURS), n, p=np.array(HOURS) / sum(HOURS))
     start = day * sb.DAY_MS + hour * sb.HOUR_MS + rng.integers(0, sb.HOUR_MS, n)
@@ -183,9 +239,7 @@ def _humans(
     imp_slot = np.floor(rng.random(len(imp_sess)) * loads[imp_sess]).astype(np.int64)
     clicked = (rng.random(len(imp_sess)) < click_p[imp_sess]).astype(np.int64)
     u = rng.random(len(imp_sess))
-    back = clicked * np.where(
-        u < BAD_CLICK_SHARE, 1, np.where(u < BAD_CLICK_SHARE + LATE_BACK_SHARE, 2, 0)
-    )
+    back = clicked * _back_kind(u, np.array(QUICK_BACK_SHARE)[cards[imp_sess]])
     account_page, checkout_page = sb.PAGES.index("account"), sb.PAGES.index("checkout")
     blocks = np.concatenate(
         [
@@ -201,16 +255,29 @@ def _humans(
         ],
         axis=1,
     )
-    b_sess, _, b_kind, b_page, b_click, b_back = blocks[:, np.lexsort(blocks[2::-1])]
+    order = np.lexsort(blocks[2::-1])
+    b_sess, _, b_kind, b_page, b_click, b_back = blocks[:, order]
     size = 1 + b_click + (b_back > 0)
     block = np.repeat(np.arange(len(size)), size)
     pos, kind, session = sb.ranks(size), b_kind[block], b_sess[block]
     imp = kind == _IMP
     event = np.where(imp, np.array([sb.IMPRESSION, sb.CLICK, sb.BACK])[pos], _BLOCK_EVENT[kind])
-    gap_class = np.where(
-        imp, np.array([2, 3, 3])[pos] + (pos == 2) * b_back[block], _BLOCK_GAP[kind]
-    )
-    gaps = sb.uniform_ints(rng, _GAPS[gap_class, 0], _GAPS[gap_class, 1])
+    draws = rng.random(len(event))
+    ts = sb.stamp(session, _gaps(draws, b_back[block], kind, pos), start)
+    # every experiment-day session under each product_cards arm: the same draws, only the
+    # share of quick backs switched; a session of the arm it was assigned gives what it gave
+    where_imp = np.argsort(order)[len(pl_sess) + len(auto_sess) + np.arange(len(imp_sess))]
+    success = []
+    actual = _successful(session, event, ts, n)
+    for arm, quick in enumerate(QUICK_BACK_SHARE):
+        backs = np.zeros(len(order), dtype=np.int64)
+        backs[where_imp] = clicked * _back_kind(u, quick)
+        good = _successful(
+            session, event, sb.stamp(session, _gaps(draws, backs[block], kind, pos), start), n
+        )
+        if not np.array_equal(good[cards == arm], actual[cards == arm]):
+            raise AssertionError("counterfactual sessions disagree")  # pragma: no cover
+        success.append(float(good[in_exp].mean()))
     value = np.select(
         [kind == _BUY, kind == _REFUND, kind == _CARRIED],
         [revenue[session], refunded[session], refunded[np.maximum(session - 1, 0)]],
@@ -218,8 +285,8 @@ def _humans(
     )
     median = np.array(LATENCY_MEDIAN_MS)[people.device[session]]
     latency = np.where(event == sb.PAGE_LOAD, sb.lognormal_ms(rng, median, 0.45), np.nan)
-    ts = sb.stamp(session, gaps, start)
-    return Events(session, ts, event, b_page[block], value, latency), autoload.astype(np.int64)
+    events = Events(session, ts, event, b_page[block], value, latency)
+    return events, autoload.astype(np.int64), success
 
 
 def _prepare(out: Path) -> None:
@@ -250,7 +317,7 @@ def generate(out: Path, *, users: int = DEFAULT_USERS, days: int = 14, seed: int
     _prepare(out)
     rng = np.random.default_rng(seed)
     people, traits, people_facts = _people(rng, users, days)
-    human_events, autoload = _humans(rng, people, traits)
+    human_events, autoload, success = _humans(rng, people, traits)
     bot_target = round(len(human_events.event) * BOT_SHARE_TARGET / (1 - BOT_SHARE_TARGET))
     bot_sessions, bot_events, bot_facts = sb.bots(rng, PRE_DAYS + days, bot_target)
     s, e = sb.merge((people, human_events), (bot_sessions, bot_events))
@@ -260,17 +327,18 @@ def generate(out: Path, *, users: int = DEFAULT_USERS, days: int = 14, seed: int
     first_ts = e.ts_ms[np.flatnonzero(np.r_[True, e.session[1:] != e.session[:-1]])]
     sb.write_events(out / "events", s, e, session_ids, START, PRE_DAYS + days)
     exposed = np.flatnonzero(first_ts >= PRE_DAYS * sb.DAY_MS)
-    arms = {name: _treated(s.cookies, name) for name in EXPERIMENTS}
+    arms = {name: _arms(s.cookies, name) for name in EXPERIMENTS}
     parts: list[IntArray] = []
     for k, name in enumerate(EXPERIMENTS):
         logged = np.array([exposure_logged(name, c) for c in s.cookies])[s.cookie[exposed]]
         sess = exposed[logged]
-        parts.append(np.stack([sess, arms[name][s.cookie[sess]], np.full(len(sess), k)]))
+        label = np.array([VARIANTS.index(v) for v in ARMS[name]])
+        parts.append(np.stack([sess, label[arms[name][s.cookie[sess]]], np.full(len(sess), k)]))
     sess, arm, experiment = np.concatenate(parts, axis=1)
     rows = np.stack([s.cookie[sess], experiment, arm, first_ts[sess]])
     labels = (EXPERIMENTS, VARIANTS)
     sb.write_exposures(out / "exposures.parquet", rows, s.cookies, labels, START)
-    facts = _facts(s, e, arms, first_ts, autoload)
+    facts = _facts(s, e, arms, first_ts, autoload, success)
     facts["generator"] = {"seed": seed, "users": users, "days": days, **_timeline(days)}
     facts["people"] = people_facts
     facts["bots"] = bot_facts
@@ -294,9 +362,39 @@ def _timeline(days: int) -> dict[str, object]:
     }
 
 
-def _split(cookies: IntArray, arm: IntArray) -> dict[str, int]:
+def _split(cookies: IntArray, arm: IntArray, names: tuple[str, ...]) -> dict[str, int]:
     unique = np.unique(cookies)
-    return {"control": int((arm[unique] == 0).sum()), "treatment": int((arm[unique] == 1).sum())}
+    return {name: int((arm[unique] == k).sum()) for k, name in enumerate(names)}
+
+
+def _contrasts(by_arm: list[float]) -> dict[str, float]:
+    """product_cards' main effects and interaction of per-arm values, as the scorecard names
+    them: a main effect is the mean at the factor's second level minus the mean at its first,
+    the interaction (both − badge only) − (photo only − control)."""
+    control, photo, badge, both = by_arm
+    return {
+        "main:photo": round((photo + both) / 2 - (control + badge) / 2, 10),
+        "main:badge": round((badge + both) / 2 - (control + photo) / 2, 10),
+        "interaction:photo*badge": round((both - badge) - (photo - control), 10),
+    }
+
+
+def _cards_truth(success: list[float]) -> dict[str, object]:
+    quick, good = list(QUICK_BACK_SHARE), [round(x, 10) for x in success]
+    return {
+        "factors": CARD_FACTORS,
+        "quick_back_share_of_clicks": dict(zip(CARDS, quick, strict=True)),
+        "session_success": dict(zip(CARDS, good, strict=True)),
+        "contrasts": {
+            "quick_back_share_of_clicks": _contrasts(quick),
+            "session_success": _contrasts(good),
+        },
+        "session_success_definition": "share of all human sessions of the experiment days"
+        " that have a click with no back within 30 s after it, each session computed under"
+        " every variant from the same random draws (only the share of quick backs switched;"
+        " in the variant a session was assigned, exactly what the data shows): the values and"
+        " contrasts of the metric session_success for these people, bots left out",
+    }
 
 
 _NOTES: Final = {
@@ -306,6 +404,14 @@ _NOTES: Final = {
     "homepage_aa": "A/A: both variants are identical; every true effect is 0",
     "promo_banner": "no behavioural effect (every true effect is 0), but a logging bug drops"
     " every exposure row of about 10% of treatment cookies: a sample-ratio mismatch",
+    "product_cards": "a 2x2 design on the listing cards: factor photo (standard, wide) and"
+    " factor badge (none, a price badge shown), one variant per combination, 25% each. It"
+    " changes only what follows a click: the share of clicks followed by a back within 30 s"
+    f" is {QUICK_BACK_SHARE[0]:.0%} (control), {QUICK_BACK_SHARE[1]:.0%} (wide_photo),"
+    f" {QUICK_BACK_SHARE[2]:.0%} (price_badge) and {QUICK_BACK_SHARE[3]:.0%}"
+    " (wide_photo_badge, not the sum of both: the badge covers part of the photo); those"
+    " clicks go back later instead. Clicks, visiting, purchases, revenue, refunds,"
+    " unsubscribes and latency are unchanged: every other effect is 0",
     "image_autoload": f"treatment autoloads images: {AUTOLOAD_SHARE:.0%} of treatment human"
     f" sessions get {AUTOLOAD_EXTRA[0]}-{AUTOLOAD_EXTRA[1]} extra page_load events, which puts"
     f" them over a per-session limit of {SESSION_EVENT_LIMIT_HINT} events: a treatment that"
@@ -315,7 +421,12 @@ _NOTES: Final = {
 
 
 def _facts(
-    s: Sessions, e: Events, arms: dict[str, IntArray], first_ts: IntArray, autoload: IntArray
+    s: Sessions,
+    e: Events,
+    arms: dict[str, IntArray],
+    first_ts: IntArray,
+    autoload: IntArray,
+    success: list[float],
 ) -> dict[str, object]:
     """What was built in, and what came out, for TRUE_EFFECTS.json."""
     n_human = len(autoload)
@@ -340,13 +451,15 @@ def _facts(
     exposed = np.unique(s.cookie[np.r_[exp["human"], exp["bot"]]])
     experiments: dict[str, dict[str, object]] = {}
     for name in EXPERIMENTS:
+        names = ARMS[name]
         experiments[name] = {
-            "variants": list(VARIANTS),
-            "planned_split": {"control": 50, "treatment": 50},
+            "variants": list(names),
+            "planned_split": dict.fromkeys(names, 100 // len(names)),
             "relative_effects": {**zero, **(lift if name == "checkout_layout" else {})},
             "note": _NOTES[name],
-            "assigned_cookies": {k: _split(s.cookie[v], arms[name]) for k, v in exp.items()},
+            "assigned_cookies": {k: _split(s.cookie[v], arms[name], names) for k, v in exp.items()},
         }
+    experiments["product_cards"].update(_cards_truth(success))
     experiments["promo_banner"]["logging_bug"] = {
         "dropped_share_of_treatment_cookies": PROMO_DROP_SHARE,
         "expected_observed_treatment_share": round(0.45 / 0.95, 4),
@@ -366,7 +479,7 @@ def _facts(
     return {
         "scenario": "Quillmoor Supply, an invented online shop (no real company, person or"
         " data set). People browse pages, see impressions, click, go back, buy, get refunds"
-        " and unsubscribe from the newsletter; bots crawl, scrape and click in bursts. Four"
+        " and unsubscribe from the newsletter; bots crawl, scrape and click in bursts. Five"
         " experiments run at once on all traffic from the first experiment day, assigned per"
         " cookie by a salted hash of the cookie id; every session in the experiment period"
         " writes one exposure row per experiment at its first event",

@@ -128,10 +128,10 @@ def hex_ids(rng: np.random.Generator, n: int, chars: int = 16) -> list[str]:
     return [text[i : i + chars] for i in range(0, n * chars, chars)]
 
 
-def uniform_ints(rng: np.random.Generator, lo: IntArray, hi: IntArray) -> IntArray:
-    """One integer in ``[lo, hi]`` (inclusive) per element."""
+def scaled_ints(uniform: FloatArray, lo: IntArray, hi: IntArray) -> IntArray:
+    """One integer in ``[lo, hi]`` (inclusive) per element, from uniforms in [0, 1)."""
     span = (hi - lo + 1).astype(np.float64)
-    out: IntArray = lo + np.floor(rng.random(len(lo)) * span).astype(np.int64)
+    out: IntArray = lo + np.floor(uniform * span).astype(np.int64)
     return out
 
 

@@ -17,7 +17,13 @@ PIPELINES = ROOT / "pipelines"
 SAMPLE = ROOT / "sample_data"
 # Verbatim copies of the NIST StRD files (see nist/SOURCES.txt and SHA256SUMS.txt).
 REFERENCE = ROOT / "tests" / "reference_data"
-DEMO_EXPERIMENTS = ("checkout_layout", "homepage_aa", "promo_banner", "image_autoload")
+DEMO_EXPERIMENTS = (
+    "checkout_layout",
+    "homepage_aa",
+    "promo_banner",
+    "image_autoload",
+    "product_cards",
+)
 
 
 # The Spark tests run unless this switch is set: a machine without pyspark or Java makes them

@@ -9,7 +9,9 @@ from __future__ import annotations
 import datetime as dt
 import json
 import math
+import tomllib
 from pathlib import Path
+from typing import Any
 
 import polars as pl
 import pytest
@@ -140,26 +142,69 @@ def scorecards(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     return out
 
 
+def contrast_weights(spec: dict[str, Any]) -> dict[str, dict[str, float]]:
+    """The main effects and the interaction of a 2×2 spec as weights per variant, written
+    from their textbook definitions: main effect = mean of the two variants at a factor's
+    other level minus the mean of the two at the control's level; interaction
+    = (μ11 − μ10) − (μ01 − μ00)."""
+    control, factors = spec["experiment"]["control"], spec["factors"]
+    f, g = factors
+    other = {
+        name: {v: level != levels[control] for v, level in levels.items()}
+        for name, levels in factors.items()
+    }
+    weights = {
+        f"main:{name}": {v: 0.5 if up else -0.5 for v, up in other[name].items()} for name in (f, g)
+    }
+    weights[f"interaction:{f}*{g}"] = {
+        v: 1.0 if other[f][v] == other[g][v] else -1.0 for v in factors[f]
+    }
+    return weights
+
+
 @pytest.mark.parametrize("experiment", DEMO_EXPERIMENTS)
 def test_every_value_matches_independent_computation(
     experiment: str, events: pl.DataFrame, scorecards: dict[str, Path]
 ) -> None:
     expected = reference(events, experiment)
+    spec = tomllib.loads((PIPELINES / f"{experiment}.toml").read_text())
+    metrics = spec["metrics"]
+    reported = {metrics["decision"], *metrics["guardrails"], *metrics["diagnostics"]}
     rows = json.loads((scorecards[experiment] / "scorecard.json").read_text())["metrics"]
-    not_reported = {"impressions", "clicks", "revenue_cap"}
-    if experiment != "checkout_layout":
-        not_reported.add("revenue_winsorised")
-    assert {r["metric"] for r in rows} == set(expected) - not_reported
+    assert {r["metric"] for r in rows} == reported
+    assert reported <= set(expected)
+    control = spec["experiment"]["control"]
+    arms = [v for v in spec["experiment"]["variants"] if v != control]
+    contrasts = contrast_weights(spec) if "factors" in spec else {}
+    assert len(rows) == len(reported) * (len(arms) + len(contrasts))
     for row in rows:
         ref = expected[row["metric"]]
-        assert row["value"] == pytest.approx(ref["treatment"][0], rel=1e-9), row["metric"]
-        assert row["control_value"] == pytest.approx(ref["control"][0], rel=1e-9), row["metric"]
-        assert row["n_units"] == ref["treatment"][1], row["metric"]
-        assert row["n_units_control"] == ref["control"][1], row["metric"]
+        where = (row["metric"], row["variant"])
+        if row["contrast"] is None:
+            assert row["value"] == pytest.approx(ref[row["variant"]][0], rel=1e-9), where
+            assert row["control_value"] == pytest.approx(ref[control][0], rel=1e-9), where
+            assert row["n_units"] == ref[row["variant"]][1], where
+            assert row["n_units_control"] == ref[control][1], where
+        else:  # a factorial contrast of the variants' values
+            weights = contrasts[row["variant"]]
+            plus = {v: w for v, w in weights.items() if w > 0}
+            minus = {v: -w for v, w in weights.items() if w < 0}
+            effect = sum(w * ref[v][0] for v, w in weights.items())
+            assert row["abs_effect"] == pytest.approx(effect, rel=1e-9, abs=1e-12), where
+            assert row["value"] == pytest.approx(
+                sum(w * ref[v][0] for v, w in plus.items()), rel=1e-9
+            )
+            assert row["control_value"] == pytest.approx(
+                sum(w * ref[v][0] for v, w in minus.items()), rel=1e-9
+            )
+            assert row["n_units"] == sum(ref[v][1] for v in plus), where
+            assert row["n_units_control"] == sum(ref[v][1] for v in minus), where
+            assert row["abs_ci_low"] < row["abs_effect"] < row["abs_ci_high"], where
         if row["metric"] == "revenue_winsorised":
             assert row["cap"] == pytest.approx(expected["revenue_cap"]["all"][0], rel=1e-12)
         else:
             assert row["cap"] is None, row["metric"]
+    assert {r["variant"] for r in rows} == {*arms, *contrasts}
 
 
 def test_true_effect_inside_decision_ci(scorecards: dict[str, Path]) -> None:
@@ -168,6 +213,30 @@ def test_true_effect_inside_decision_ci(scorecards: dict[str, Path]) -> None:
     decision = next(r for r in card["metrics"] if r["role"] == "decision")
     true_rel = truth["checkout_layout"]["relative_effects"][decision["metric"]]
     assert decision["rel_ci_low"] < true_rel < decision["rel_ci_high"]
+
+
+def test_true_factorial_effects_inside_their_cis(scorecards: dict[str, Path]) -> None:
+    """product_cards: TRUE_EFFECTS states session_success under every variant for the same
+    human sessions and its main effects and interaction; each lies inside the scorecard's
+    CI (as does each arm's true difference), and the interaction's CI excludes 0: the demo
+    shows that the two changes together do less than the sum of each alone."""
+    truth = json.loads((SAMPLE / "TRUE_EFFECTS.json").read_text())["experiments"]
+    truth = truth["product_cards"]
+    spec = tomllib.loads((PIPELINES / "product_cards.toml").read_text())
+    assert spec["metrics"]["decision"] == "session_success"
+    card = json.loads((scorecards["product_cards"] / "scorecard.json").read_text())
+    rows = {r["variant"]: r for r in card["metrics"] if r["metric"] == "session_success"}
+    stated = truth["session_success"]
+    for term, weights in contrast_weights(spec).items():
+        true = truth["contrasts"]["session_success"][term]
+        assert true == pytest.approx(sum(w * stated[v] for v, w in weights.items()), abs=1e-9)
+        assert rows[term]["abs_ci_low"] < true < rows[term]["abs_ci_high"], term
+    for arm in ("wide_photo", "price_badge", "wide_photo_badge"):
+        true = stated[arm] - stated["control"]
+        assert rows[arm]["abs_ci_low"] < true < rows[arm]["abs_ci_high"], arm
+    interaction = rows["interaction:photo*badge"]
+    assert truth["contrasts"]["session_success"]["interaction:photo*badge"] < 0
+    assert interaction["abs_ci_high"] < 0 and interaction["p_value"] < 0.05
 
 
 def test_aa_has_no_sample_ratio_mismatch(scorecards: dict[str, Path]) -> None:

@@ -268,3 +268,47 @@ def test_factorial_rows_and_adjustments_on_a_small_pipeline(tmp_path: Path) -> N
     )
     assert all(r["p_value_adjusted"] is None for r in guard)
     assert all(math.isfinite(r["p_value"]) for r in rows if r["metric"] != "refunds")
+
+
+def test_quantile_metric_contrasts_are_contrasts_of_the_variants_quantiles(
+    tmp_path: Path,
+) -> None:
+    """A quantile metric's main effects and interaction are contrasts of each variant's
+    quantile of all its page loads (numpy's linear rule as the reference), with the
+    outer-interval standard errors; a main effect's variance is a quarter of the
+    interaction's (weights ±1/2 against ±1)."""
+    rng = np.random.default_rng(12)
+    events, exposures, latencies = [], [], {}
+    scale = {"control": 300.0, "big_photo": 360.0, "red_button": 300.0, "big_red": 330.0}
+    for variant, median in scale.items():
+        latencies[variant] = []
+        for i in range(60):
+            unit = f"{variant}-{i:02d}"
+            exposures.append(exposure(unit, variant))
+            for j in range(int(rng.integers(1, 5))):
+                value = float(np.round(median * rng.lognormal(0.0, 0.4)))
+                events.append(event(unit, "page_load", 1 + j, latency_ms=value))
+                latencies[variant].append(value)
+    text = factorial_spec(GOOD_FACTORS).replace(
+        'diagnostics = ["purchases", "buyer_share"]', 'diagnostics = ["page_latency_p95"]'
+    )
+    spec = write_case(tmp_path, events, exposures, spec_text=text)
+    out = tmp_path / "out"
+    result = CliRunner().invoke(app, ["run", str(spec), "--out", str(out)])
+    assert result.exit_code == 0, result.output
+    rows = json.loads((out / "scorecard.json").read_text())["metrics"]
+    p95 = {v: float(np.quantile(x, 0.95)) for v, x in latencies.items()}  # metric_defs q
+    by_name = {r["variant"]: r for r in rows if r["metric"] == "page_latency_p95"}
+    for term in factorial_terms(
+        ["photo_size", "button_colour"],
+        {"control": [0, 0], "big_photo": [1, 0], "red_button": [0, 1], "big_red": [1, 1]},
+    ):
+        row = by_name[term.name]
+        expected = sum(w * p95[v] for v, w in term.weights.items())
+        assert row["abs_effect"] == pytest.approx(expected, rel=1e-9, abs=1e-9), term.name
+        assert row["method"] == "outer-ci"
+        assert row["abs_ci_low"] < row["abs_effect"] < row["abs_ci_high"]
+        assert 0 < row["p_value"] < 1
+    main, inter = by_name["main:photo_size"], by_name["interaction:photo_size*button_colour"]
+    half = (main["abs_ci_high"] - main["abs_ci_low"]) / 2
+    assert half == pytest.approx((inter["abs_ci_high"] - inter["abs_ci_low"]) / 4, rel=1e-9)

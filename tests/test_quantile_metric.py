@@ -32,6 +32,7 @@ from metricforge.stats.moments import Moments
 from metricforge.stats.quantiles import (
     QuantileSummary,
     quantile_compare,
+    quantile_contrast,
     rank_band,
     two_sided_z,
 )
@@ -120,6 +121,28 @@ def test_difference_and_its_interval_from_the_band_widths() -> None:
     assert effect.abs_ci_high == pytest.approx(10.0 + z * se, rel=1e-12)
     assert effect.rel_effect == pytest.approx(700 / 690 - 1, rel=1e-12)
     assert effect.method == "outer-ci"
+
+
+def test_contrast_of_quantiles_from_the_band_widths() -> None:
+    """A factorial contrast of a quantile metric: Σ w·q̂ with the variance Σ w²·se² of
+    independent variants, each se its band's width over 2z; z-test (scipy's normal). With
+    the weights (1, −1) it is the difference that quantile_compare reports."""
+    z = two_sided_z(0.05)
+    bands = [(690.0, 671.0, 711.0), (700.0, 680.0, 724.0), (695.0, 676.0, 716.0)]
+    bands.append((720.0, 698.0, 746.0))
+    cells = [summary(q, lo, hi, BELOW) for q, lo, hi in bands]
+    result = quantile_contrast(cells, [1.0, -1.0, -1.0, 1.0], q=Q, alpha=0.05)
+    se = math.sqrt(sum(((hi - lo) / (2 * z)) ** 2 for _, lo, hi in bands))
+    assert result.estimate == 720.0 - 695.0 - 700.0 + 690.0
+    assert (result.ci_low, result.ci_high) == pytest.approx((15 - z * se, 15 + z * se), rel=1e-12)
+    assert result.p_value == pytest.approx(2 * sst.norm.sf(15 / se), rel=1e-12)
+    assert (result.positive, result.negative) == (1410.0, 1395.0)
+    assert result.method == "outer-ci"
+    pair = quantile_contrast(cells[1::-1], [1.0, -1.0], q=Q, alpha=0.05)
+    effect = quantile_compare(cells[1], cells[0], q=Q, alpha=0.05)
+    assert (pair.estimate, pair.ci_low, pair.ci_high, pair.p_value) == pytest.approx(
+        (effect.abs_effect, effect.abs_ci_low, effect.abs_ci_high, effect.p_value), rel=1e-12
+    )
 
 
 def test_band_that_disagrees_with_the_moments_is_refused() -> None:

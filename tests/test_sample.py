@@ -256,6 +256,46 @@ def test_built_in_scenarios_show_in_the_data(
         assert set(truth["experiments"][name]["relative_effects"].values()) == {0.0}
 
 
+def test_the_factorial_experiment_changes_quick_backs_as_stated(
+    committed: duckdb.DuckDBPyConnection, truth: dict[str, Any]
+) -> None:
+    """product_cards: four variants of about a quarter each; per variant, the share of human
+    clicks followed by their back within 30 s is the stated one (about 7,000 clicks per
+    variant; allowed: 4 times the largest binomial standard error, √(0.25/n)), and the
+    stated contrasts are those of the stated shares."""
+    cards = truth["experiments"]["product_cards"]
+    assert cards["planned_split"] == dict.fromkeys(cards["variants"], 25)
+    arms = "(select distinct unit_id, variant from x where experiment = 'product_cards')"
+    split = dict(committed.execute(f"select variant, count(*) from {arms} group by all").fetchall())
+    assert set(split) == set(cards["variants"])
+    assert all(0.23 < n / sum(split.values()) < 0.27 for n in split.values())
+    quick = committed.execute(
+        f"""with ordered as (
+            select cookie_id, event, ts, lead(event) over w as next_event,
+                   lead(ts) over w as next_ts
+            from e where ts >= timestamp '2026-09-15'
+                   and cookie_id not in (select cookie_id from bots)
+            window w as (partition by session_id order by ts))
+        select a.variant, count(*), avg(case when next_event = 'back'
+                   and next_ts - ts <= interval 30 second then 1.0 else 0.0 end)
+        from ordered join {arms} as a on a.unit_id = ordered.cookie_id
+        where event = 'click' group by all"""
+    ).fetchall()
+    stated = cards["quick_back_share_of_clicks"]
+    for variant, clicks, share in quick:
+        assert clicks > 1000
+        assert share == pytest.approx(stated[variant], abs=4 * (0.25 / clicks) ** 0.5), variant
+    c, p, b, both = (stated[v] for v in cards["variants"])
+    assert cards["contrasts"]["quick_back_share_of_clicks"] == pytest.approx(
+        {
+            "main:photo": (p + both - c - b) / 2,
+            "main:badge": (b + both - c - p) / 2,
+            "interaction:photo*badge": both - b - p + c,
+        },
+        abs=1e-9,
+    )
+
+
 @pytest.mark.slow
 def test_committed_sample_is_a_fresh_default_regeneration(tmp_path: Path) -> None:
     """Byte-identical under the pyarrow that wrote the committed files; same rows otherwise."""

@@ -21,9 +21,10 @@ from typing import Any
 from metricforge.errors import StatsError
 from metricforge.runner import RunData
 from metricforge.spec.model import Direction, MetricDef, Role
-from metricforge.stats.contrasts import contrast, factorial_terms
+from metricforge.stats.contrasts import ContrastResult, contrast, factorial_terms
 from metricforge.stats.moments import FloatArray
 from metricforge.stats.multiplicity import benjamini_hochberg, holm
+from metricforge.stats.quantiles import QuantileSummary, quantile_contrast
 
 TWO_SIDED = "two-sided"
 
@@ -75,6 +76,7 @@ def factorial_rows(
     names = [f.name for f in spec.factors]
     levels = {v: [f.coded(v) for f in spec.factors] for v in spec.variant_names}
     moments = data.moments[metric]
+    quantiles = data.extras.quantiles.get(metric)
     rows = []
     for term in factorial_terms(names, levels):
         variants = list(term.weights)
@@ -84,7 +86,10 @@ def factorial_rows(
         row["n_units"] = sum(moments[v].n for v, w in term.weights.items() if w > 0)
         row["n_units_control"] = sum(moments[v].n for v, w in term.weights.items() if w < 0)
         try:
-            res = contrast([moments[v] for v in variants], weights, alpha=spec.alpha)
+            if quantiles is None:
+                res = contrast([moments[v] for v in variants], weights, alpha=spec.alpha)
+            else:  # a quantile metric: its variants' quantiles, not per-unit moments
+                res = _quantile_contrast(data, metric, quantiles, variants, weights)
         except StatsError as err:
             row["method"] = f"not computed: {err.message}"
             rows.append(row)
@@ -100,3 +105,17 @@ def factorial_rows(
         )
         rows.append(row)
     return rows
+
+
+def _quantile_contrast(
+    data: RunData,
+    metric: str,
+    summaries: dict[str, QuantileSummary],
+    variants: list[str],
+    weights: list[float],
+) -> ContrastResult:
+    cells = [summaries[v] for v in variants if v in summaries]
+    if len(cells) != len(variants):
+        raise StatsError("a variant has no values of this quantile metric")
+    q, alpha = data.plan.metric(metric).q, data.plan.spec.alpha
+    return quantile_contrast(cells, weights, q=q, alpha=alpha)

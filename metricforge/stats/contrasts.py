@@ -42,18 +42,43 @@ def contrast(
     """Σ w·r with its two-sided test of 0 and its CI."""
     if len(cells) != len(weights) or not cells:
         raise StatsError("a contrast needs one weight per cell")
-    if not 0.0 < alpha < 1.0:
-        raise StatsError(f"alpha must lie strictly between 0 and 1, is {alpha}")
     points = [ratio_point_and_variance(m) for m in cells]
-    parts = [w * r for w, (r, _) in zip(weights, points, strict=True)]
     terms = [w * w * v for w, (_, v) in zip(weights, points, strict=True)]
-    estimate, var = math.fsum(parts), math.fsum(terms)
     ratio = any(m.is_ratio for m in cells)
     if ratio:
         df = math.inf
     else:
+        var = math.fsum(terms)
         spread = math.fsum(q * q / (m.n - 1) for q, m in zip(terms, cells, strict=True))
         df = var * var / spread if spread > 0 else math.inf
+    return combine(
+        [r for r, _ in points],
+        [v for _, v in points],
+        weights,
+        df=df,
+        alpha=alpha,
+        method="delta" if ratio else "welch",
+    )
+
+
+def combine(
+    points: Sequence[float],
+    variances: Sequence[float],
+    weights: Sequence[float],
+    *,
+    df: float,
+    alpha: float,
+    method: str,
+) -> ContrastResult:
+    """Σ w·r of independent estimates r with variances V: variance Σ w²·V, Student's t with
+    ``df`` degrees of freedom (the normal when infinite), two-sided."""
+    if not len(points) == len(variances) == len(weights) or not points:
+        raise StatsError("a contrast needs one weight per cell")
+    if not 0.0 < alpha < 1.0:
+        raise StatsError(f"alpha must lie strictly between 0 and 1, is {alpha}")
+    parts = [w * r for w, r in zip(weights, points, strict=True)]
+    estimate = math.fsum(parts)
+    var = math.fsum(w * w * v for w, v in zip(weights, variances, strict=True))
     if var > 0:
         se = math.sqrt(var)
         p = 2.0 * float(t_sf(abs(estimate) / se, df))
@@ -67,7 +92,7 @@ def contrast(
         p_value=p,
         positive=math.fsum(x for x, w in zip(parts, weights, strict=True) if w > 0),
         negative=0.0 - math.fsum(x for x, w in zip(parts, weights, strict=True) if w < 0),
-        method="delta" if ratio else "welch",
+        method=method,
     )
 
 

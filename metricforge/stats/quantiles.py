@@ -13,6 +13,7 @@ difference of the two independent variants is tested with z.
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
 from functools import lru_cache
 
@@ -20,6 +21,7 @@ import numpy as np
 
 from metricforge.errors import StatsError
 from metricforge.stats.dist import norm_ppf, norm_sf
+from metricforge.stats.contrasts import ContrastResult, combine
 from metricforge.stats.effects import (
     Effect,
     check_hypothesis,
@@ -136,3 +138,14 @@ def quantile_compare(
         p=one(p),
         method=np.array([METHOD]),
     ).item()
+
+
+def quantile_contrast(
+    cells: Sequence[QuantileSummary], weights: Sequence[float], *, q: float, alpha: float = 0.05
+) -> ContrastResult:
+    """Σ w·q̂ of independent variants' quantiles (e.g. a factorial main effect), two-sided
+    z-test of 0 and CI, each variant's standard error from its outer interval; with the
+    weights (1, −1) the difference ``quantile_compare`` reports."""
+    ses = [quantile_se(c, q, alpha) for c in cells]
+    points = [c.quantile for c in cells]
+    return combine(points, [s * s for s in ses], weights, df=math.inf, alpha=alpha, method=METHOD)
