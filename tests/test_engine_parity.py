@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import functools
 import json
+from collections.abc import Mapping
 from pathlib import Path
 
 import pyarrow as pa
@@ -72,6 +73,9 @@ class Recording:
 
     def version(self) -> str:
         return self.engine.version()
+
+    def storage_settings(self) -> Mapping[str, str] | None:
+        return self.engine.storage_settings()
 
     def run(self, compiled: CompiledRun, inputs: EngineInputs) -> dict[str, pa.Table]:
         self.tables = self.engine.run(compiled, inputs)

@@ -157,6 +157,10 @@ class DuckDBEngine:
     def version(self) -> str:
         return str(duckdb.__version__)
 
+    def storage_settings(self) -> None:
+        """None: external access is off, only local files are read (file:// URIs as paths)."""
+        return None
+
     def run(self, compiled: CompiledRun, inputs: EngineInputs) -> dict[str, pa.Table]:
         return self.run_statements(rendered(compiled, self.dialect), inputs)
 
