@@ -517,7 +517,21 @@ def test_spark_is_never_given_a_glob_pattern() -> None:
             _exact([bad])
 
 
-def test_a_missing_spark_connector_is_named() -> None:
-    message = 'org.apache.hadoop.fs.UnsupportedFileSystemException: No FileSystem for scheme "s3a"'
-    assert "add org.apache.hadoop:hadoop-aws" in _connector_hint(message)
+@pytest.mark.parametrize(
+    ("message", "connector"),
+    [
+        ('UnsupportedFileSystemException: No FileSystem for scheme "gs"', "gcs-connector"),
+        (
+            "java.lang.ClassNotFoundException: Class org.apache.hadoop.fs.s3a.S3AFileSystem"
+            " not found",
+            "org.apache.hadoop:hadoop-aws",
+        ),
+        (
+            "Class org.apache.hadoop.fs.azurebfs.SecureAzureBlobFileSystem not found",
+            "org.apache.hadoop:hadoop-azure",
+        ),
+    ],
+)
+def test_a_missing_spark_connector_is_named(message: str, connector: str) -> None:
+    assert f"add {connector}" in _connector_hint(message) or connector in _connector_hint(message)
     assert _connector_hint("some other failure") == ""

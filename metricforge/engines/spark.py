@@ -63,6 +63,12 @@ CONNECTORS: Mapping[str, str] = {
     "abfs": "org.apache.hadoop:hadoop-azure",
     "abfss": "org.apache.hadoop:hadoop-azure",
 }
+# Hadoop knows these file systems by class name even where their jar is missing.
+CONNECTOR_CLASSES: Mapping[str, str] = {
+    "S3AFileSystem": "s3a",
+    "AzureBlobFileSystem": "abfss",
+    "GoogleHadoopFileSystem": "gs",
+}
 
 
 def is_connect(master: str) -> bool:
@@ -107,11 +113,12 @@ def is_local(master: str) -> bool:
 
 
 def _first_line(err: BaseException) -> str:
-    text = str(err).strip()
-    for line in text.splitlines():
-        if line.strip():
-            return line.strip()
-    return type(err).__name__
+    """The error's first line; for a Java error behind py4j ("An error occurred while
+    calling o41.parquet."), the Java exception's line."""
+    lines = [line.strip() for line in str(err).splitlines() if line.strip()]
+    if len(lines) > 1 and lines[0].startswith("An error occurred while calling"):
+        return lines[1].removeprefix(": ")
+    return lines[0] if lines else type(err).__name__
 
 
 @contextmanager
@@ -155,9 +162,12 @@ def _exact(locations: Sequence[str]) -> list[str]:
 def _connector_hint(message: str) -> str:
     """A hint when Spark lacks the file system of a URI scheme (e.g. hadoop-aws for s3a)."""
     found = re.search(r'No FileSystem for scheme "?([A-Za-z0-9+.-]+)', message)
-    if not found:
+    scheme = found.group(1) if found else None
+    for name, its_scheme in CONNECTOR_CLASSES.items():
+        if re.search(rf"Class \S*{name} not found", message):
+            scheme = its_scheme
+    if scheme is None:
         return ""
-    scheme = found.group(1)
     package = CONNECTORS.get(scheme, "its Hadoop connector")
     return (
         f" (Spark has no file system for {scheme}:// here: add {package}, e.g. with"
