@@ -22,7 +22,7 @@ from metricforge.cli import app
 from metricforge.engines.spark import _connector_hint, _exact, _uri_base_path
 from metricforge.errors import EngineError
 from metricforge.inputs import inspect
-from metricforge.locations import Uri, UriError, is_uri, parse_uri, s3_options
+from metricforge.locations import Uri, UriError, connect, is_uri, parse_uri, s3_options
 from metricforge.runner import gather_inputs
 from metricforge.sample import EVENT_SCHEMA, EXPOSURE_SCHEMA
 from metricforge.spec import load_plan
@@ -226,6 +226,23 @@ def test_s3_settings_come_from_hadoop_keys_then_the_environment(
     options = s3_options(settings, env, "logs")
     assert options.pop("connect_timeout") > 0  # every connection attempt is bounded
     assert options == expected
+
+
+@pytest.mark.parametrize(
+    ("text", "kind"),
+    [
+        ("s3a://bucket/logs", "S3FileSystem"),
+        ("gs://bucket/logs", "GcsFileSystem"),
+        ("abfss://logs@acct.dfs.core.windows.net/x", "AzureFileSystem"),
+        ("file:///srv/logs", "LocalFileSystem"),
+    ],
+)
+def test_each_scheme_opens_its_pyarrow_file_system_without_io(
+    text: str, kind: str, loopback_only: dict[str, str]
+) -> None:
+    opened = connect(parse_uri(text), {}, loopback_only)
+    assert type(opened.fs).__name__ == kind
+    assert opened == parse_uri(text)  # the file system is not part of the value
 
 
 # ------------------------------------------------------------ file:// through pyarrow
