@@ -304,12 +304,14 @@ def parquet_files(root: Uri) -> list[Uri]:
         if not item.path.startswith(prefix):
             raise StorageError(f"{root.text}: the listing returned {item.path}, outside it")
         relative = item.path[len(prefix) :]
-        if any(seg in ("", ".", "..") for seg in relative.split("/")) or any(
-            c in _NOT_ALLOWED for c in relative
+        if (
+            any(seg in ("", ".", "..") for seg in relative.split("/"))
+            or any(c in _NOT_ALLOWED for c in relative)
+            or not relative.isprintable()
         ):
             raise StorageError(
                 f"{root.text}: the file name {relative!r} holds '.', '..', empty segments,"
-                " escapes or glob characters; it cannot be named exactly"
+                " escapes, glob or control characters; it cannot be named exactly"
             )
         files.append(root.child(relative))
     files.sort(key=lambda f: f.text)

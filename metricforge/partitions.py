@@ -63,8 +63,12 @@ def _in_window(day: dt.date | None, first: dt.datetime, last: dt.datetime) -> bo
 
 
 def _ts_range(path: Where) -> tuple[dt.datetime, dt.datetime] | None:
-    """Min and max of ``ts`` over the file's row groups, from the footer; None if unknown."""
-    meta = read_metadata(path)
+    """Min and max of ``ts`` over the file's row groups, from the footer; None if unknown
+    (also for an unreadable footer: the file's inspection names it)."""
+    try:
+        meta = read_metadata(path)
+    except InputDataError:
+        return None
     names = [meta.schema.column(i).name for i in range(meta.num_columns)]
     if "ts" not in names:
         return None

@@ -286,7 +286,7 @@ def _missing_events(data: Path) -> str:
 def _corrupt_footer(data: Path) -> str:
     path = data / "events" / f"date={DAYS[1]}" / "part-0.parquet"
     path.write_bytes(path.read_bytes()[:-40] + b"PAR1")
-    return f"error: file://{path}: "  # the footer is the first thing read
+    return f"error: file://{path}: corrupt Parquet footer"
 
 
 def _link_outside(data: Path) -> str:
@@ -299,7 +299,7 @@ def _link_outside(data: Path) -> str:
 def _glob_name(data: Path) -> str:
     path = data / "events" / f"date={DAYS[1]}" / "part-0.parquet"
     path.rename(path.with_name("part-[0].parquet"))
-    return "escapes or glob characters"
+    return "escapes, glob or control characters"
 
 
 @pytest.mark.parametrize(
@@ -354,19 +354,49 @@ def test_a_file_uri_run_gives_the_local_path_scorecard_with_uri_labels(uri_case:
         assert record["content_sha256"] == hashlib.sha256(content).hexdigest()
 
 
-def test_rerun_verifies_uri_inputs_and_names_a_changed_file(uri_case: Path) -> None:
+def _fewer_rows(events: Path) -> str:
+    path = events / f"date={DAYS[2]}" / "part-0.parquet"
+    pq.write_table(pq.read_table(path).slice(1), path)
+    return f"changed file://{path} (size"
+
+
+def _corrupted(events: Path) -> str:
+    path = events / f"date={DAYS[2]}" / "part-0.parquet"
+    path.write_bytes(path.read_bytes()[:-40] + b"PAR1")
+    return f"changed file://{path} (unreadable: corrupt Parquet footer)"
+
+
+def _added(events: Path) -> str:
+    path = events / f"date={DAYS[2]}" / "part-1.parquet"
+    path.write_bytes((events / f"date={DAYS[2]}" / "part-0.parquet").read_bytes())
+    return f"added file://{path}"
+
+
+def _removed(events: Path) -> str:
+    path = events / f"date={DAYS[1]}" / "part-0.parquet"
+    path.unlink()
+    return f"missing file://{path}"
+
+
+def _outside_the_window(events: Path) -> str:
+    path = events / f"date={DAYS[0]}" / "part-0.parquet"
+    path.write_bytes(b"not Parquet at all")  # a day the run does not read
+    return ""
+
+
+@pytest.mark.parametrize("edit", [_fewer_rows, _corrupted, _added, _removed, _outside_the_window])
+def test_rerun_verifies_uri_inputs_and_names_a_changed_file(uri_case: Path, edit: object) -> None:
     first = uri_case.parent / "first"
     assert invoke("run", uri_case, "--out", first)[0] == 0
+    change = edit(uri_case.parent / "data" / "events")  # type: ignore[operator]
     code, out = invoke("rerun", first, "--out", uri_case.parent / "again")
-    assert code == 0, out
-    assert "every file matches the manifest" in out and "REPRODUCED byte for byte" in out
-    changed = uri_case.parent / "data" / "events" / f"date={DAYS[2]}" / "part-0.parquet"
-    table = pq.read_table(changed)
-    pq.write_table(table.slice(1), changed)
-    code, out = invoke("rerun", first, "--out", uri_case.parent / "third")
-    assert code == 2
-    assert f"changed file://{changed} (size" in out and "rows 40 → 39" in out
-    assert not (uri_case.parent / "third").exists()
+    if not change:
+        assert code == 0, out
+        assert "every file matches the manifest" in out and "REPRODUCED byte for byte" in out
+        return
+    assert code == 2 and out.count("\n") == 1, out
+    assert "1 input file(s) differ from the manifest: " + change in out
+    assert not (uri_case.parent / "again").exists()
 
 
 # --------------------------------------------------------------------- remote data
