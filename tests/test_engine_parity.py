@@ -63,13 +63,15 @@ diagnostics = {others}
 
 
 class Recording:
-    """An engine that keeps the tables it returned, so a test sees what the runner saw."""
+    """An engine that keeps what it was handed and the tables it returned, so a test sees
+    what the runner saw."""
 
     def __init__(self, engine: Engine) -> None:
         self.engine = engine
         self.name = engine.name
         self.dialect = engine.dialect
         self.tables: dict[str, pa.Table] = {}
+        self.inputs: EngineInputs | None = None
 
     def version(self) -> str:
         return self.engine.version()
@@ -78,6 +80,7 @@ class Recording:
         return self.engine.storage_settings()
 
     def run(self, compiled: CompiledRun, inputs: EngineInputs) -> dict[str, pa.Table]:
+        self.inputs = inputs
         self.tables = self.engine.run(compiled, inputs)
         return self.tables
 

@@ -7,16 +7,14 @@ from __future__ import annotations
 
 import json
 import shutil
-from collections.abc import Mapping
 from pathlib import Path
 
-import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 from typer.testing import CliRunner
 
 from metricforge.cli import app
-from metricforge.compile.query import CompiledRun, compile_plan
+from metricforge.compile.query import compile_plan
 from metricforge.engines.base import Engine, EngineInputs
 from metricforge.errors import EngineError
 from metricforge.report.scorecard import build
@@ -24,32 +22,10 @@ from metricforge.runner import execute, needed_event_columns
 from metricforge.spec import load_plan
 from tests.conftest import PIPELINES, ROOT, SAMPLE
 from tests.parity import assert_same_rows, assert_same_scorecard, assert_same_tables, tolerance
-from tests.test_engine_parity import reference
+from tests.test_engine_parity import Recording, reference
 from tests.test_uri_inputs import DAYS, write_logs, write_spec
 
 STAMPED = ("spec_sha256", "inputs_fingerprint")  # a URI spec is another spec, with other labels
-
-
-class Seeing:
-    """An engine that keeps what it was handed and what it returned."""
-
-    def __init__(self, engine: Engine) -> None:
-        self.engine = engine
-        self.name = engine.name
-        self.dialect = engine.dialect
-        self.inputs: EngineInputs | None = None
-        self.tables: dict[str, pa.Table] = {}
-
-    def version(self) -> str:
-        return self.engine.version()
-
-    def storage_settings(self) -> Mapping[str, str] | None:
-        return self.engine.storage_settings()
-
-    def run(self, compiled: CompiledRun, inputs: EngineInputs) -> dict[str, pa.Table]:
-        self.inputs = inputs
-        self.tables = self.engine.run(compiled, inputs)
-        return self.tables
 
 
 def uri_copy(pipeline: Path, folder: Path) -> Path:
@@ -73,7 +49,7 @@ def test_a_demo_pipeline_by_file_uris_gives_the_local_path_numbers(
 ) -> None:
     pipeline = PIPELINES / "checkout_layout.toml"
     want_tables, want = reference(pipeline)  # DuckDB over the local paths
-    seeing = Seeing(engine)
+    seeing = Recording(engine)
     data = execute(load_plan(uri_copy(pipeline, tmp_path)), seeing)
     card = build(data)
     rel = tolerance(engine.name)
