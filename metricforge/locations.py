@@ -194,8 +194,9 @@ def _check_authority(scheme: str, text: str, netloc: str) -> None:
 
 def s3_options(settings: Mapping[str, str], env: Mapping[str, str], bucket: str) -> dict[str, Any]:
     """pyarrow S3FileSystem options from the Hadoop S3A keys (``fs.s3a.*``, per bucket
-    ``fs.s3a.bucket.NAME.*`` first) and the standard AWS variables; pyarrow itself reads
-    the credentials chain (variables, ``~/.aws`` files, instance role) when no key is set."""
+    ``fs.s3a.bucket.NAME.*`` first), then the standard AWS variables of the endpoint (which
+    pyarrow ignores) and of the region; pyarrow reads the credentials chain (variables,
+    ``~/.aws`` files, instance role) when no key pair is set."""
 
     def s3a(key: str) -> str | None:
         return settings.get(f"fs.s3a.bucket.{bucket}.{key}") or settings.get(f"fs.s3a.{key}")
@@ -209,7 +210,7 @@ def s3_options(settings: Mapping[str, str], env: Mapping[str, str], bucket: str)
             transport, host = ("https" if ssl else "http"), endpoint
         options["endpoint_override"] = host.rstrip("/")
         options["scheme"] = transport.lower()
-    region = s3a("endpoint.region")
+    region = s3a("endpoint.region") or env.get("AWS_REGION") or env.get("AWS_DEFAULT_REGION")
     if region:
         options["region"] = region
     access, secret = s3a("access.key"), s3a("secret.key")

@@ -218,6 +218,17 @@ def test_definitions_and_filters_stay_local_paths(tmp_path: Path, key: str) -> N
             {"anonymous": True, "endpoint_override": "127.0.0.1:1", "scheme": "http"},
         ),
         ({"fs.s3a.access.key": "AK"}, {}, {}),  # half a key pair: pyarrow's own chain
+        ({}, {"AWS_DEFAULT_REGION": "ap-south-1"}, {"region": "ap-south-1"}),
+        (
+            {"fs.s3a.endpoint.region": "eu-west-1"},
+            {"AWS_REGION": "us-west-2", "AWS_DEFAULT_REGION": "ap-south-1"},
+            {"region": "eu-west-1"},
+        ),
+        (
+            {},
+            {"AWS_REGION": "us-west-2", "AWS_DEFAULT_REGION": "ap-south-1"},
+            {"region": "us-west-2"},
+        ),
     ],
 )
 def test_s3_settings_come_from_hadoop_keys_then_the_environment(
