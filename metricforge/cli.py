@@ -251,7 +251,7 @@ def check(pipeline: PipelineArg) -> None:
     def action() -> None:
         plan = load_plan(pipeline)
         compile_plan(plan)
-        _, files = gather_inputs(plan)
+        _, files = gather_inputs(plan, storage={})  # URIs listed with the environment's settings
         out_console.print(
             f"ok: {plan.spec.name}: {len(plan.reported)} metrics, filter {plan.bot_filter.ref},"
             f" {len(files)} input files, {sum(f.rows for f in files)} rows"
@@ -312,26 +312,36 @@ def rerun(
         typer.Option(help="Resolve the spec's relative data paths from here (data moved)."),
     ] = None,
     threads: Annotated[int | None, typer.Option(help="Engine threads (default: all).")] = None,
+    engine: Annotated[EngineName, typer.Option(help="Engine to run on.")] = EngineName.duckdb,
+    spark_master: Annotated[
+        str | None, typer.Option(help="Spark master URL (with --engine spark).")
+    ] = None,
+    spark_conf: Annotated[
+        list[str] | None, typer.Option(help="A Spark setting KEY=VALUE (repeatable).")
+    ] = None,
 ) -> None:
     """Rerun a past run from its manifest's own copies; say whether it reproduces exactly.
 
     Exits with 2 if the inputs changed (unless --allow-changed-inputs), with 5 if the new
     scorecard is not byte-identical to the old one next to the manifest."""
     from metricforge import history
-    from metricforge.engines.duckdb import DuckDBEngine
+    from metricforge.engines.choose import open_engine
     from metricforge.report.terminal import render
     from metricforge.report.views import render_rerun
     from metricforge.rerun import RERUN_DIFFERS_EXIT
     from metricforge.rerun import rerun as rerun_run
 
     def action() -> bool:
-        done = rerun_run(
-            manifest,
-            out,
-            DuckDBEngine(threads=threads),
-            allow_changed_inputs=allow_changed_inputs,
-            spec_folder=spec_folder,
-        )
+        with open_engine(
+            engine, threads=threads, spark_master=spark_master, spark_settings=spark_conf or ()
+        ) as chosen:
+            done = rerun_run(
+                manifest,
+                out,
+                chosen,
+                allow_changed_inputs=allow_changed_inputs,
+                spec_folder=spec_folder,
+            )
         render(done.card, out_console)
         render_rerun(str(done.manifest), done.changes, done.verdict, out_console)
         extra = {"rerun_of": str(done.manifest.absolute()), "reproduced": done.verdict.identical}

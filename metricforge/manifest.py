@@ -18,7 +18,8 @@ from typing import Any
 
 from metricforge import __version__
 from metricforge.errors import ManifestError
-from metricforge.inputs import InputFile, label_of, with_content_hashes
+from metricforge.inputs import InputFile, label_of, with_content_hashes, within
+from metricforge.locations import Uri
 from metricforge.provenance import library_versions
 from metricforge.report.scorecard import Scorecard
 from metricforge.runner import RunData
@@ -34,8 +35,11 @@ def sha256_text(text: str) -> str:
     return hashlib.sha256(text.encode("utf-8")).hexdigest()
 
 
-def absolute(path: Path) -> str:
-    """The absolute path, ``..`` removed lexically (as the spec's relative paths mean it)."""
+def absolute(path: Path | Uri) -> str:
+    """The absolute path, ``..`` removed lexically (as the spec's relative paths mean it);
+    a URI as written."""
+    if isinstance(path, Uri):
+        return path.text
     return Path(os.path.abspath(path)).as_posix()
 
 
@@ -75,8 +79,7 @@ def _inputs(data: RunData, fingerprint: str) -> dict[str, Any]:
     base = spec.path.parent
 
     def role(f: InputFile) -> str:
-        under = f.path == spec.exposures_path or spec.exposures_path in f.path.parents
-        return "exposures" if under else "events"
+        return "exposures" if within(f.path, spec.exposures_path) else "events"
 
     return {
         "fingerprint": fingerprint,

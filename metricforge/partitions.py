@@ -8,7 +8,9 @@ engine is handed the kept files, so this works the same for every engine.
 Contract: a ``date=YYYY-MM-DD`` folder holds the events whose ``ts`` falls on that UTC day.
 Each kept file's ``ts`` statistics (from its Parquet footer) are checked against its day;
 when a kept file breaks the contract (e.g. partitions by local time), the names cannot be
-trusted and every file is read. Files outside any ``date=`` folder are always read.
+trusted and every file is read. Files outside any ``date=`` folder are always read. The same
+holds for data URIs (``s3a://bucket/events/date=2026-09-15/part-0.parquet``): their folders
+are the URI's path segments, and the footers are read through the URI's file system.
 """
 
 from __future__ import annotations
@@ -19,18 +21,19 @@ import re
 from collections.abc import Sequence
 from pathlib import Path
 
-import pyarrow.parquet as pq
-
 from metricforge.errors import InputDataError
+from metricforge.inputs import Where, read_metadata
+from metricforge.locations import Uri
 from metricforge.spec.model import Plan
 
 _DAY = re.compile(r"date=(\d{4}-\d{2}-\d{2})")
 ONE_DAY = dt.timedelta(days=1)
 
 
-def partition_day(path: Path) -> dt.date | None:
+def partition_day(path: Where) -> dt.date | None:
     """The day of the innermost ``date=YYYY-MM-DD`` folder holding ``path``, if any."""
-    for part in reversed(path.parent.parts):
+    folders = path.segments[:-1] if isinstance(path, Uri) else path.parent.parts
+    for part in reversed(folders):
         match = _DAY.fullmatch(part)
         if match:
             try:
@@ -60,15 +63,26 @@ def _in_window(day: dt.date | None, first: dt.datetime, last: dt.datetime) -> bo
     return day is None or (_midnight(day) + ONE_DAY > first and _midnight(day) < last)
 
 
-def _ts_range(path: Path) -> tuple[dt.datetime, dt.datetime] | None:
-    """Min and max of ``ts`` over the file's row groups, from the footer; None if unknown."""
+def _ts_range(path: Where) -> tuple[dt.datetime, dt.datetime] | None:
+    """Min and max of ``ts`` over the file's row groups, from the footer; None if unknown
+    (also for an unreadable footer: the file's inspection names it). A local file's answer
+    is kept while its modification time and size stay the same."""
+    if isinstance(path, Uri):
+        return _ts_range_read(path)
     info = path.stat()
     return _ts_range_of(path, info.st_mtime_ns, info.st_size)
 
 
 @functools.lru_cache(maxsize=4096)
 def _ts_range_of(path: Path, mtime_ns: int, size: int) -> tuple[dt.datetime, dt.datetime] | None:
-    meta = pq.read_metadata(path)
+    return _ts_range_read(path)
+
+
+def _ts_range_read(path: Where) -> tuple[dt.datetime, dt.datetime] | None:
+    try:
+        meta = read_metadata(path)
+    except InputDataError:
+        return None
     names = [meta.schema.column(i).name for i in range(meta.num_columns)]
     if "ts" not in names:
         return None
@@ -91,12 +105,12 @@ def _naive_utc(value: dt.datetime) -> dt.datetime:
     return value.astimezone(dt.UTC).replace(tzinfo=None) if value.tzinfo else value
 
 
-def _keeps_contract(path: Path, day: dt.date) -> bool:
+def _keeps_contract(path: Where, day: dt.date) -> bool:
     found = _ts_range(path)
     return found is None or (found[0] >= _midnight(day) and found[1] < _midnight(day) + ONE_DAY)
 
 
-def inside_window(files: Sequence[Path], first: dt.datetime, last: dt.datetime) -> bool:
+def inside_window(files: Sequence[Where], first: dt.datetime, last: dt.datetime) -> bool:
     """Whether every file's ``ts`` range (from its footer) lies in [first, last). Then a
     bound on ``ts`` in the scan cannot leave out a row, and would only cost a comparison per
     row (the analysis window itself is decided per unit)."""
@@ -108,8 +122,8 @@ def inside_window(files: Sequence[Path], first: dt.datetime, last: dt.datetime) 
 
 
 def prune(
-    files: Sequence[Path], first: dt.datetime, last: dt.datetime, *, folder: Path
-) -> list[Path]:
+    files: Sequence[Where], first: dt.datetime, last: dt.datetime, *, folder: Path | Uri
+) -> list[Where]:
     """The files that can hold rows with ``ts`` in [first, last), in their given order."""
     kept = [f for f in files if _in_window(partition_day(f), first, last)]
     if len(kept) == len(files):

@@ -20,7 +20,7 @@ from metricforge.compile.quality import (
     negative_column,
 )
 from metricforge.engines.base import EngineInputs
-from metricforge.inputs import InputFile
+from metricforge.inputs import InputFile, within
 from metricforge.schema import EXPOSURE_COLUMNS
 from metricforge.spec.model import Plan
 
@@ -50,9 +50,8 @@ def summarise(
     plan: Plan, inputs: EngineInputs, files: list[InputFile], table: pa.Table | None
 ) -> dict[str, Any]:
     """The section as plain JSON-ready data, with one note per non-zero finding."""
-    exposure_paths = set(inputs.exposures)
-    events = [f for f in files if f.path not in exposure_paths]
-    exposures = [f for f in files if f.path in exposure_paths]
+    exposures = [f for f in files if within(f.path, plan.spec.exposures_path)]
+    events = [f for f in files if not within(f.path, plan.spec.exposures_path)]
     unit = plan.spec.unit
     rows = table.to_pylist() if table is not None else []
     by_variant = {str(r["variant"]): r for r in rows}

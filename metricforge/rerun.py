@@ -11,12 +11,14 @@ from __future__ import annotations
 import dataclasses
 import json
 import tempfile
+from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
 
 from metricforge.engines.base import Engine
 from metricforge.errors import InputDataError, ManifestError, OutputError, SpecError
-from metricforge.inputs import content_sha256, inspect, label_of, parquet_files
+from metricforge.inputs import content_sha256, inspect, label_of
+from metricforge.locations import Uri
 from metricforge.manifest import (
     FULL,
     Manifest,
@@ -25,11 +27,12 @@ from metricforge.manifest import (
     read_manifest,
     sha256_text,
 )
+from metricforge.partitions import event_window, exposure_window, prune
 from metricforge.provenance import definitions_sha256
 from metricforge.report.files import prepare_output, write_outputs
 from metricforge.report.scorecard import Scorecard, build
 from metricforge.reproduce import Verdict, judge
-from metricforge.runner import execute
+from metricforge.runner import execute, list_files, open_location
 from metricforge.spec.experiment import assemble_plan, load_spec
 from metricforge.spec.filters import REGISTRY_NAME, parse_ref
 from metricforge.spec.model import Plan
@@ -84,6 +87,14 @@ def _check_copy(man: Manifest, text: str, recorded: object, *keys: str) -> None:
         raise man.error("the copy does not match its recorded sha256 (manifest edited?)", *keys)
 
 
+def _rebased(location: Path | Uri, copy_folder: Path, base: Path) -> Path | Uri:
+    """A data location of the spec copy, as the spec meant it from ``base``; a URI names the
+    same data from every folder and machine."""
+    if isinstance(location, Uri):
+        return location
+    return base / label_of(location, copy_folder)
+
+
 def plan_from_manifest(man: Manifest, work: Path, spec_folder: Path | None = None) -> Plan:
     """The plan of the manifest's run, loaded from its own copies written under ``work``.
 
@@ -121,8 +132,8 @@ def plan_from_manifest(man: Manifest, work: Path, spec_folder: Path | None = Non
         spec = dataclasses.replace(
             loaded,
             path=base / spec_abs.name,
-            events_path=base / label_of(loaded.events_path, spec_file.parent),
-            exposures_path=base / label_of(loaded.exposures_path, spec_file.parent),
+            events_path=_rebased(loaded.events_path, spec_file.parent, base),
+            exposures_path=_rebased(loaded.exposures_path, spec_file.parent, base),
             definition_paths=(defs,),
         )
         plan = assemble_plan(spec, bot_filter=ref, filters=filters)
@@ -141,17 +152,22 @@ def plan_from_manifest(man: Manifest, work: Path, spec_folder: Path | None = Non
     return plan
 
 
-def verify_inputs(man: Manifest, plan: Plan) -> list[InputChange]:
-    """Every recorded input file that changed or is missing, and every file added since."""
+def verify_inputs(
+    man: Manifest, plan: Plan, storage: Mapping[str, str] | None = None
+) -> list[InputChange]:
+    """Every recorded input file that changed or is missing, and every file added since,
+    among the files the run reads (the date partitions of its window). ``storage``: as for
+    ``runner.gather_inputs`` (None: remote data is refused)."""
     full = man.get("inputs", "hashes") == FULL
     base = plan.spec.path.parent
     recorded = {r["path"]: r for r in man.get("inputs", "files")}
     now: dict[str, dict[str, object] | str] = {}
-    for root in (plan.spec.events_path, plan.spec.exposures_path):
+    for key, window in (("events", event_window(plan)), ("exposures", exposure_window(plan))):
+        root = open_location(plan.spec, key, storage)
         try:
-            paths = parquet_files(root)
+            paths = prune(list_files(plan.spec, key, root, absent_ok=True), *window, folder=root)
         except InputDataError:
-            paths = []
+            paths = []  # no partition of the window left
         for path in paths:
             try:
                 f = inspect(path, base)
@@ -203,7 +219,7 @@ def rerun(
         )
     with tempfile.TemporaryDirectory(prefix="metricforge-rerun-") as tmp:
         plan = plan_from_manifest(man, Path(tmp), spec_folder)
-        changes = verify_inputs(man, plan)
+        changes = verify_inputs(man, plan, engine.storage_settings())
         if changes and not allow_changed_inputs:
             raise InputsChangedError(changes, man, plan.spec.path.parent)
         prepare_output(out, plan)

@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import math
+import os
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -14,12 +16,23 @@ from metricforge.compile.expressions import columns_of
 from metricforge.compile.query import compile_plan, result_columns
 from metricforge.engines.base import Engine, EngineInputs
 from metricforge.errors import InputDataError
-from metricforge.inputs import InputFile, check_columns, fingerprint, inspect, parquet_files
+from metricforge.inputs import (
+    InputFile,
+    Where,
+    check_columns,
+    fingerprint,
+    inspect_all,
+    parquet_files,
+    within,
+)
+from metricforge.locations import StorageError, Uri, connect
+from metricforge.locations import parquet_files as uri_parquet_files
 from metricforge.partitions import event_window, exposure_window, inside_window, prune
 from metricforge.provenance import Stamp, make_stamp
 from metricforge.quality import summarise
 from metricforge.schema import EVENT_COLUMNS, EXPOSURE_COLUMNS
-from metricforge.spec.model import MetricDef, Plan, RuleKind
+from metricforge.spec.model import ExperimentSpec, MetricDef, Plan, RuleKind
+from metricforge.spec.tomlfile import TomlFile
 from metricforge.stats import Moments
 
 
@@ -70,21 +83,96 @@ def needed_event_columns(plan: Plan) -> tuple[str, ...]:
     return tuple(c for c in EVENT_COLUMNS if c in cols)
 
 
-def gather_inputs(plan: Plan) -> tuple[EngineInputs, list[InputFile]]:
+def gather_inputs(
+    plan: Plan, storage: Mapping[str, str] | None = None
+) -> tuple[EngineInputs, list[InputFile]]:
+    """The checked input files of a run and what its engine reads.
+
+    ``storage``: the settings of remote file systems (Hadoop keys such as ``fs.s3a.endpoint``;
+    see locations.py) for an engine that reads URIs; None for an engine that reads only
+    local files (paths and ``file:`` URIs), which refuses remote data."""
     base = plan.spec.path.parent
+    event_root = open_location(plan.spec, "events", storage)
+    exposure_root = open_location(plan.spec, "exposures", storage)
     # only the date partitions that can hold rows of the analysis window (partitions.py)
-    events_path, exposures_path = plan.spec.events_path, plan.spec.exposures_path
-    event_paths = prune(parquet_files(events_path), *event_window(plan), folder=events_path)
-    exposure_paths = prune(
-        parquet_files(exposures_path), *exposure_window(plan), folder=exposures_path
-    )
-    events = [inspect(p, base) for p in event_paths]
-    exposures = [inspect(p, base) for p in exposure_paths]
+    event_files = list_files(plan.spec, "events", event_root)
+    event_paths = prune(event_files, *event_window(plan), folder=event_root)
+    exposure_files = list_files(plan.spec, "exposures", exposure_root)
+    exposure_paths = prune(exposure_files, *exposure_window(plan), folder=exposure_root)
+    events = inspect_all(event_paths, base)
+    exposures = inspect_all(exposure_paths, base)
     cols = needed_event_columns(plan)
     check_columns(events, {c: EVENT_COLUMNS[c] for c in cols}, "event")
     check_columns(exposures, dict(EXPOSURE_COLUMNS), "exposure")
-    hive = any("=" in part for p in event_paths for part in p.parts)
-    return EngineInputs(event_paths, exposure_paths, cols, hive), events + exposures
+    hive = any("=" in part for p in event_paths for part in _folders(p))
+    engine_inputs = EngineInputs(
+        _local(event_paths),
+        _local(exposure_paths),
+        cols,
+        hive,
+        event_uris=_uris(event_paths),
+        exposure_uris=_uris(exposure_paths),
+    )
+    return engine_inputs, events + exposures
+
+
+def _folders(path: Where) -> tuple[str, ...]:
+    return path.segments if isinstance(path, Uri) else path.parts
+
+
+def _local(paths: Sequence[Where]) -> list[Path]:
+    """The files as local paths (those of ``file:`` URIs); none when the data is remote."""
+    local = [p.local_path() if isinstance(p, Uri) else p for p in paths]
+    return [p for p in local if p is not None]
+
+
+def _uris(paths: Sequence[Where]) -> tuple[str, ...]:
+    return tuple(p.spark for p in paths if isinstance(p, Uri))
+
+
+def location_error(spec: ExperimentSpec, key: str, message: str) -> InputDataError:
+    """An error about the data location ``[data] key``, naming the spec's line."""
+    line = TomlFile(spec.path, spec.text, {}).line_of("data", key)
+    return InputDataError(message, file=str(spec.path), line=line, key=f"data.{key}")
+
+
+def open_location(spec: ExperimentSpec, key: str, storage: Mapping[str, str] | None) -> Path | Uri:
+    """The spec's ``[data] key`` ready to list: a path, or a URI with its file system open."""
+    root = spec.events_path if key == "events" else spec.exposures_path
+    if not isinstance(root, Uri):
+        return root
+    if root.remote and storage is None:
+        raise location_error(
+            spec,
+            key,
+            f"{root.text} is not on this machine: the DuckDB engine reads only local paths"
+            " and file:// URIs; run on Spark (metricforge run --engine spark)",
+        )
+    try:
+        return connect(root, storage or {}, os.environ)
+    except StorageError as err:
+        raise location_error(spec, key, err.message) from None
+
+
+def list_files(
+    spec: ExperimentSpec, key: str, root: Path | Uri, *, absent_ok: bool = False
+) -> list[Where]:
+    """The Parquet files of an opened location (``open_location``); with ``absent_ok``,
+    none when the location holds no data (but a file system that cannot be listed is
+    still an error)."""
+    if not isinstance(root, Uri):
+        try:
+            return list(parquet_files(root))
+        except InputDataError:
+            if absent_ok:
+                return []
+            raise
+    try:
+        return list(uri_parquet_files(root))
+    except StorageError as err:
+        if absent_ok and err.absent:
+            return []
+        raise location_error(spec, key, err.message) from None
 
 
 def _f(value: object) -> float:
@@ -92,11 +180,13 @@ def _f(value: object) -> float:
 
 
 def execute(plan: Plan, engine: Engine) -> RunData:
-    engine_inputs, files = gather_inputs(plan)
+    engine_inputs, files = gather_inputs(plan, engine.storage_settings())
     stamp = make_stamp(plan, fingerprint(files), engine.name, engine.version())
     # A scan bound on ts lets the engine skip row groups outside the window; when every
     # file read lies inside it (e.g. day partitions), the bound could skip nothing.
-    bounded = not inside_window(engine_inputs.events, *event_window(plan))
+    # Remote data (no local paths) keeps the bound: its footers are not read a second time.
+    remote = bool(engine_inputs.event_uris) and not engine_inputs.events
+    bounded = remote or not inside_window(engine_inputs.events, *event_window(plan))
     tables = engine.run(compile_plan(plan, engine.dialect, ts_bounds=bounded), engine_inputs)
     data = reshape(plan, stamp, files, tables["moments"])
     data.tables = tables
@@ -109,7 +199,7 @@ def reshape(plan: Plan, stamp: Stamp, files: list[InputFile], table: pa.Table) -
     rows = table.to_pylist()
     spec = plan.spec
     exposures_file = next(
-        (f.label for f in files if f.path in parquet_files(spec.exposures_path)),
+        (f.label for f in files if within(f.path, spec.exposures_path)),
         str(spec.exposures_path),
     )
     seen = {r["variant"] for r in rows}

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import functools
 import json
+from collections.abc import Mapping
 from pathlib import Path
 
 import pyarrow as pa
@@ -62,18 +63,24 @@ diagnostics = {others}
 
 
 class Recording:
-    """An engine that keeps the tables it returned, so a test sees what the runner saw."""
+    """An engine that keeps what it was handed and the tables it returned, so a test sees
+    what the runner saw."""
 
     def __init__(self, engine: Engine) -> None:
         self.engine = engine
         self.name = engine.name
         self.dialect = engine.dialect
         self.tables: dict[str, pa.Table] = {}
+        self.inputs: EngineInputs | None = None
 
     def version(self) -> str:
         return self.engine.version()
 
+    def storage_settings(self) -> Mapping[str, str] | None:
+        return self.engine.storage_settings()
+
     def run(self, compiled: CompiledRun, inputs: EngineInputs) -> dict[str, pa.Table]:
+        self.inputs = inputs
         self.tables = self.engine.run(compiled, inputs)
         return self.tables
 

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Protocol
@@ -18,10 +18,14 @@ from metricforge.errors import EngineError
 
 @dataclass(frozen=True)
 class EngineInputs:
-    events: list[Path]
+    events: list[Path]  # local files: paths, or those of file:// URIs; none for remote data
     exposures: list[Path]
     event_columns: tuple[str, ...]  # only these are read
     hive: bool
+    # When the spec named URIs: the same files as the URIs an engine reading URIs is given
+    # (s3a://, hdfs://, file:/...; see locations.py), in the same order.
+    event_uris: tuple[str, ...] = ()
+    exposure_uris: tuple[str, ...] = ()
 
 
 class Engine(Protocol):
@@ -29,6 +33,12 @@ class Engine(Protocol):
     dialect: str
 
     def version(self) -> str: ...
+
+    def storage_settings(self) -> Mapping[str, str] | None:
+        """Settings of the remote file systems the engine reads (Hadoop keys such as
+        ``fs.s3a.endpoint``), used to list the inputs too; None when the engine reads only
+        local files (paths and file:// URIs)."""
+        ...
 
     def run(self, compiled: CompiledRun, inputs: EngineInputs) -> dict[str, pa.Table]:
         """Materialise ``compiled.unit_rows``, then return each result query's table by name."""

@@ -158,6 +158,10 @@ class DuckDBEngine:
     def version(self) -> str:
         return str(duckdb.__version__)
 
+    def storage_settings(self) -> None:
+        """None: external access is off, only local files are read (file:// URIs as paths)."""
+        return None
+
     def run(self, compiled: CompiledRun, inputs: EngineInputs) -> dict[str, pa.Table]:
         # rendered() checks every statement as a tree and parses its text back (guard.py)
         return self._execute(rendered(compiled, self.dialect), inputs)

@@ -11,14 +11,16 @@ result query, and returns Arrow tables typed as DuckDB's (engines/base.py: arrow
 from __future__ import annotations
 
 import os
+import posixpath
 import re
 import shutil
 import socket
 import warnings
 from collections.abc import Iterator, Mapping, Sequence
 from contextlib import contextmanager, suppress
-from pathlib import Path
+from pathlib import Path, PurePosixPath
 from typing import TYPE_CHECKING, Any
+from urllib.parse import urlsplit
 
 import pyarrow as pa
 
@@ -51,6 +53,22 @@ LAUNCH_CONF: Mapping[str, str] = {
 # Local mode: a few shuffle partitions instead of 200 tiny ones.
 LOCAL_CONF: Mapping[str, str] = {"spark.sql.shuffle.partitions": "4"}
 LOG4J = Path(__file__).with_name("spark-log4j2.properties")
+# Characters that make Spark expand a path as a glob pattern: inputs must not hold them.
+GLOB_CHARACTERS = "{}[]*?\\"
+# The Hadoop connector each URI scheme needs on Spark's classpath (hadoop-aws: the version
+# of Spark's own hadoop-client jars).
+CONNECTORS: Mapping[str, str] = {
+    "s3a": "org.apache.hadoop:hadoop-aws (the version of Spark's hadoop-client jars)",
+    "gs": "the GCS connector (com.google.cloud.bigdataoss:gcs-connector)",
+    "abfs": "org.apache.hadoop:hadoop-azure",
+    "abfss": "org.apache.hadoop:hadoop-azure",
+}
+# Hadoop knows these file systems by class name even where their jar is missing.
+CONNECTOR_CLASSES: Mapping[str, str] = {
+    "S3AFileSystem": "s3a",
+    "AzureBlobFileSystem": "abfss",
+    "GoogleHadoopFileSystem": "gs",
+}
 
 
 def is_connect(master: str) -> bool:
@@ -95,11 +113,12 @@ def is_local(master: str) -> bool:
 
 
 def _first_line(err: BaseException) -> str:
-    text = str(err).strip()
-    for line in text.splitlines():
-        if line.strip():
-            return line.strip()
-    return type(err).__name__
+    """The error's first line; for a Java error behind py4j ("An error occurred while
+    calling o41.parquet."), the Java exception's line."""
+    lines = [line.strip() for line in str(err).splitlines() if line.strip()]
+    if len(lines) > 1 and lines[0].startswith("An error occurred while calling"):
+        return lines[1].removeprefix(": ")
+    return lines[0] if lines else type(err).__name__
 
 
 @contextmanager
@@ -117,6 +136,43 @@ def _base_path(files: Sequence[Path]) -> str:
     while "=" in root.name:
         root = root.parent
     return str(root)
+
+
+def _uri_base_path(uris: Sequence[str]) -> str:
+    """The same for files given as URIs of one file system (``s3a://bucket/events/...``)."""
+    parts = [urlsplit(u) for u in uris]
+    prefix = f"{parts[0].scheme}://{parts[0].netloc}"
+    root = PurePosixPath(posixpath.commonpath([posixpath.dirname(p.path) for p in parts]))
+    while "=" in root.name:
+        root = root.parent
+    return prefix + str(root)
+
+
+def _exact(locations: Sequence[str]) -> list[str]:
+    """``locations`` unchanged, refusing one that Spark would read as a glob pattern."""
+    for location in locations:
+        if any(c in GLOB_CHARACTERS for c in location):
+            raise EngineError(
+                f"Spark would read '{location}' as a glob pattern (it holds one of"
+                f" {GLOB_CHARACTERS}); rename the file or folder"
+            )
+    return list(locations)
+
+
+def _connector_hint(message: str) -> str:
+    """A hint when Spark lacks the file system of a URI scheme (e.g. hadoop-aws for s3a)."""
+    found = re.search(r'No FileSystem for scheme "?([A-Za-z0-9+.-]+)', message)
+    scheme = found.group(1) if found else None
+    for name, its_scheme in CONNECTOR_CLASSES.items():
+        if re.search(rf"Class \S*{name} not found", message):
+            scheme = its_scheme
+    if scheme is None:
+        return ""
+    package = CONNECTORS.get(scheme, "its Hadoop connector")
+    return (
+        f" (Spark has no file system for {scheme}:// here: add {package}, e.g. with"
+        " --spark-conf spark.jars.packages=...)"
+    )
 
 
 class SparkEngine:
@@ -183,6 +239,12 @@ class SparkEngine:
     def version(self) -> str:
         return str(self.session().version)
 
+    def storage_settings(self) -> dict[str, str]:
+        """The Hadoop keys of ``--spark-conf spark.hadoop.KEY=VALUE`` (e.g. ``fs.s3a.endpoint``):
+        the listing of URI inputs uses the same endpoint and keys as Spark."""
+        prefix = "spark.hadoop."
+        return {k[len(prefix) :]: v for k, v in self.conf.items() if k.startswith(prefix)}
+
     def close(self) -> None:
         """Stop the session if this engine started it."""
         if self._spark is not None and self._owned:
@@ -193,19 +255,27 @@ class SparkEngine:
     def _register(self, spark: SparkSession, inputs: EngineInputs) -> None:
         from pyspark.sql import functions as F
 
-        def read(files: Sequence[Path], columns: Sequence[str], hive: bool) -> DataFrame:
+        def read(
+            files: Sequence[Path], uris: Sequence[str], columns: Sequence[str], hive: bool
+        ) -> DataFrame:
             reader = spark.read.option("mergeSchema", "true")
             if hive:
-                reader = reader.option("basePath", _base_path(files))
-            frame = reader.parquet(*[str(p.resolve()) for p in files])
+                base = _uri_base_path(uris) if uris else _base_path(files)
+                reader = reader.option("basePath", base)
+            located = _exact(uris or [str(p.resolve()) for p in files])
+            frame = reader.parquet(*located)
             # Naive timestamps are read as TIMESTAMP_NTZ; under the session's UTC they are
             # the same instants as TIMESTAMP, the type the compiled literals have.
             return frame.select(
                 *[F.col(c).cast("timestamp").alias(c) if c == "ts" else F.col(c) for c in columns]
             )
 
-        read(inputs.events, inputs.event_columns, inputs.hive).createOrReplaceTempView("events")
-        read(inputs.exposures, tuple(EXPOSURE_COLUMNS), False).createOrReplaceTempView("exposures")
+        read(
+            inputs.events, inputs.event_uris, inputs.event_columns, inputs.hive
+        ).createOrReplaceTempView("events")
+        read(
+            inputs.exposures, inputs.exposure_uris, tuple(EXPOSURE_COLUMNS), False
+        ).createOrReplaceTempView("exposures")
 
     def _drop(self, spark: SparkSession) -> None:
         for view in (UNIT_TABLE, *VIEWS):
@@ -231,7 +301,8 @@ class SparkEngine:
         except EngineError:
             raise
         except Exception as err:  # noqa: BLE001 - py4j, gRPC and Spark errors alike
-            raise EngineError(f"Spark failed: {_first_line(err)}") from None
+            first = _first_line(err)
+            raise EngineError(f"Spark failed: {first}{_connector_hint(str(err))}") from None
         finally:
             with suppress(Exception):  # a stopped session has nothing to drop
                 self._drop(spark)

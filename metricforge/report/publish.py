@@ -29,6 +29,7 @@ from collections.abc import Iterable
 from pathlib import Path
 
 from metricforge.errors import OutputError
+from metricforge.locations import Uri
 from metricforge.spec.model import Plan
 
 # Test hook: when this variable names a step below, the process kills itself (SIGKILL) right
@@ -47,9 +48,11 @@ def _step(name: str) -> None:
 def protected_paths(plan: Plan) -> tuple[list[Path], list[Path]]:
     """(input folders, input files) of a run: the output may not touch them."""
     spec = plan.spec
+    data = [
+        p.local_path() if isinstance(p, Uri) else p for p in (spec.events_path, spec.exposures_path)
+    ]
     candidates = [
-        spec.events_path,
-        spec.exposures_path,
+        *[p for p in data if p is not None],  # a file:// URI is local; remote data is not
         spec.path,
         plan.bot_filter.path.parent,
         *spec.definition_paths,

@@ -7,6 +7,7 @@ import math
 from pathlib import Path
 
 from metricforge.errors import SpecError, closest
+from metricforge.locations import Uri, UriError, is_uri, parse_uri
 from metricforge.schema import EVENT_COLUMNS
 from metricforge.spec.filters import load_filter
 from metricforge.spec.metrics import load_library
@@ -45,8 +46,26 @@ def plain_name(sec: Section, key: str, value: str, limit: int = MAX_NAME) -> str
     return value
 
 
-def _data_path(sec: Section, key: str, base: Path) -> Path:
-    return base / plain_name(sec, key, sec.req_str(key), 4096)
+def _data_path(sec: Section, key: str, base: Path) -> Path | Uri:
+    """A data location: a path (relative to the spec's folder, or absolute) or a URI."""
+    text = plain_name(sec, key, sec.req_str(key), 4096)
+    if not is_uri(text):
+        return base / text
+    try:
+        return parse_uri(text)
+    except UriError as err:
+        raise sec.error(err.message, key, suggestion=err.suggestion) from None
+
+
+def _local_path(sec: Section, key: str, text: str, base: Path) -> Path:
+    """A location of definitions or filters: always a path on this machine."""
+    if is_uri(text):
+        raise sec.error(
+            "definitions and filters are read from local paths; URIs are accepted only for"
+            " events and exposures",
+            key,
+        )
+    return base / plain_name(sec, key, text, 4096)
 
 
 def load_spec(path: Path) -> ExperimentSpec:
@@ -175,7 +194,7 @@ def load_spec(path: Path) -> ExperimentSpec:
         events_path=_data_path(data, "events", base),
         exposures_path=_data_path(data, "exposures", base),
         definition_paths=tuple(
-            base / plain_name(data, "definitions", p, 4096)
+            _local_path(data, "definitions", p, base)
             for p in data.str_list("definitions", ["../metric_defs"])
         ),
         decision=decision,
@@ -246,7 +265,7 @@ def filters_folder(spec: ExperimentSpec) -> Path:
     data = Section(toml, ("data",), toml.data.get("data", {}))
     folder = data.text("filters")
     if folder is not None:
-        return spec.path.parent / plain_name(data, "filters", folder, 4096)
+        return _local_path(data, "filters", folder, spec.path.parent)
     return (
         spec.definition_paths[0] / "filters"
         if spec.definition_paths[0].is_dir()

@@ -9,6 +9,8 @@ from pathlib import Path
 
 import sqlglot.expressions as exp
 
+from metricforge.locations import Uri
+
 
 class Kind(StrEnum):
     COUNT = "count"
@@ -142,8 +144,8 @@ class ExperimentSpec:
     window_days: int
     alpha: float
     bot_filter_ref: str
-    events_path: Path
-    exposures_path: Path
+    events_path: Path | Uri  # a local path, or a URI ([data] events = "s3a://...")
+    exposures_path: Path | Uri
     definition_paths: tuple[Path, ...]
     decision: str
     guardrails: tuple[str, ...]

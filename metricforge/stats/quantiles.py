@@ -20,8 +20,8 @@ from functools import lru_cache
 import numpy as np
 
 from metricforge.errors import StatsError
-from metricforge.stats.dist import norm_ppf, norm_sf
 from metricforge.stats.contrasts import ContrastResult, combine
+from metricforge.stats.dist import norm_ppf, norm_sf
 from metricforge.stats.effects import (
     Effect,
     check_hypothesis,
