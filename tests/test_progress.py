@@ -5,7 +5,10 @@ from __future__ import annotations
 
 import io
 import threading
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
+from typing import Any
 
 import pytest
 from typer.testing import CliRunner
@@ -148,3 +151,33 @@ def test_no_progress_output_when_not_a_terminal(
     assert drawn == []
     assert "reading events" not in result.output
     assert "\r" not in result.output and "\x1b[" not in result.output
+
+
+@pytest.mark.parametrize("wanted", [True, False])
+def test_the_engine_polls_its_own_connection_with_progress_tracking_on(
+    wanted: bool, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """With a display, DuckDB's connection building unit_rows is the polled source, and it
+    tracks its progress figure without printing a bar of its own; without one, neither."""
+    from metricforge.engines import duckdb as engine_module
+    from metricforge.engines.duckdb import DuckDBEngine
+    from metricforge.runner import execute
+    from metricforge.spec import load_plan
+
+    seen: list[tuple[bool, bool, bool]] = []
+    real_watch = engine_module.watch
+
+    @contextmanager
+    def spy(source: Any, make_display: Any) -> Iterator[None]:
+        bar, printed = source.execute(
+            "SELECT current_setting('enable_progress_bar'),"
+            " current_setting('enable_progress_bar_print')"
+        ).fetchone()
+        seen.append((make_display is not None, bar, bar and printed))  # a bar DuckDB draws
+        with real_watch(source, make_display):
+            yield
+
+    monkeypatch.setattr(engine_module, "watch", spy)
+    display = (lambda: FakeDisplay()) if wanted else None
+    execute(load_plan(PIPELINES / "homepage_aa.toml"), DuckDBEngine(progress=display))
+    assert seen == [(wanted, wanted, False)]

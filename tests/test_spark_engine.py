@@ -3,8 +3,10 @@ Spark Connect server (``sc://``) giving the DuckDB scorecard."""
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import os
+import re
 import socket
 import subprocess
 import sys
@@ -19,6 +21,7 @@ from metricforge.cli import app
 from metricforge.engines.choose import spark_conf
 from metricforge.engines.spark import _base_path
 from metricforge.errors import EngineError
+from metricforge.spec import load_plan
 from tests.conftest import PIPELINES, SKIP_SPARK, event, exposure, write_case
 from tests.parity import assert_same_scorecard, tolerance
 
@@ -183,3 +186,72 @@ def test_spark_connect_master_gives_the_duckdb_scorecard(
     assert got["stamp"]["engine"] == "spark"  # type: ignore[index]
     assert_same_scorecard(got["metrics"], want["metrics"], tolerance("spark"))  # type: ignore[arg-type]
     assert got["variants"] == want["variants"]
+
+
+@pytest.mark.spark
+@pytest.mark.slow
+def test_spark_reads_only_the_window_files_and_the_needed_columns(spark_engine: object) -> None:
+    """Spark's own plan of the unit query: one file scan of the events, over only the listed
+    files (the 14 experiment days of the 28 in sample_data) and only the needed columns."""
+    from metricforge.compile.query import compile_plan
+    from metricforge.engines.spark import SparkEngine
+    from metricforge.runner import gather_inputs
+
+    assert isinstance(spark_engine, SparkEngine)
+    full = load_plan(PIPELINES / "checkout_layout.toml")
+    plan = dataclasses.replace(
+        full, spec=dataclasses.replace(full.spec, cuped=False, pre_period_days=0), pre_period_days=0
+    )
+    inputs, _ = gather_inputs(plan)
+    assert len(inputs.events) == 14 and inputs.hive
+    spark = spark_engine.session()
+    spark_engine._register(spark, inputs)
+    try:
+        sql = compile_plan(plan, "spark").unit_rows.sql(dialect="spark")
+        text = spark.sql(f"EXPLAIN FORMATTED {sql}").collect()[0][0]
+    finally:
+        spark_engine._drop(spark)
+    scans = [
+        block
+        for block in text.split("\n\n")
+        if "Scan parquet" in block and "events" in block.split("Location:")[-1]
+    ]
+    assert len(scans) == 1, text  # one scan of the events
+    scan = scans[0]
+    # "InMemoryFileIndex [file:/.../date=2026-09-15/part-0.parquet, ... 13 entries]"
+    files = re.search(
+        r"InMemoryFileIndex \[\S*date=2026-09-15/part-0\.parquet, \.\.\. (\d+) entries", scan
+    )
+    assert files is not None and int(files.group(1)) == 13, scan  # the first and 13 more
+    schema = re.search(r"ReadSchema: struct<(.*)>", scan)
+    assert schema is not None, scan
+    read = {field.split(":")[0] for field in schema.group(1).split(",")}
+    needed = {"ts", "cookie_id", "session_id", "event", "value", "latency_ms", "device"}
+    assert read == needed | {"user_agent"}, read
+
+
+@pytest.mark.spark
+@pytest.mark.slow
+def test_a_file_spark_cannot_read_is_one_line_without_a_java_stack_trace(tmp_path: Path) -> None:
+    """Its footer is sound (the run's own checks pass), its first data page is not: Spark fails
+    the job, the user sees one line naming the file, and the JVM's log on stderr holds no
+    stack trace; nothing is written. A separate process: the JVM writes to the stderr it was
+    started with."""
+    if SKIP_SPARK:
+        pytest.skip("METRICFORGE_SKIP_SPARK=1: the Spark tests are switched off")
+    import pyarrow.parquet as pq
+
+    spec = _small_case(tmp_path)
+    broken = tmp_path / "events" / "part-0.parquet"
+    start = pq.ParquetFile(broken).metadata.row_group(0).column(0).data_page_offset
+    data = bytearray(broken.read_bytes())
+    data[start : start + 64] = b"\xab" * 64  # the first page's header
+    broken.write_bytes(bytes(data))
+    command = [sys.executable, "-m", "metricforge.cli", "run", str(spec), "--out"]
+    command += [str(tmp_path / "o"), "--engine", "spark", "--spark-master", "local[1]"]
+    done = subprocess.run(command, capture_output=True, text=True, timeout=600, check=False)
+    assert done.returncode == 2, done.stderr[-3000:]
+    last = done.stderr.strip().splitlines()[-1]
+    assert last.startswith("error: Spark failed: ") and str(broken.resolve()) in last, last
+    assert "\tat " not in done.stderr and "Caused by" not in done.stderr, done.stderr[-3000:]
+    assert not (tmp_path / "o").exists()
