@@ -30,6 +30,7 @@ from metricforge.checks.aa import (
 )
 from metricforge.cli import app
 from metricforge.compile.checks import bucket_moments
+from metricforge.compile.query import compile_plan
 from metricforge.engines.duckdb import DuckDBEngine
 from metricforge.runner import gather_inputs
 from metricforge.spec import load_plan
@@ -357,3 +358,17 @@ def test_aa_command_prints_every_metric(tmp_path: Path) -> None:
     assert all(r["replays"] == 50 and 0 <= r["share"] <= 1 for r in report["rows"])
     bad = CliRunner().invoke(app, ["aa", str(PIPELINES / "homepage_aa.toml"), "--period", "post"])
     assert bad.exit_code == 2
+
+
+@pytest.mark.parametrize("dialect", ["duckdb", "spark"])
+@pytest.mark.parametrize("period", list(Period))
+@pytest.mark.parametrize("pipeline", ["checkout_layout", "checkout_accounts", "product_cards"])
+def test_the_replay_scans_the_events_as_a_run_does(
+    pipeline: str, period: Period, dialect: str
+) -> None:
+    """The replay builds only the run's unit query (not its results): the same scan."""
+    scan = replay_plan(load_plan(PIPELINES / f"{pipeline}.toml"), period)
+    mine = compiled_replay(scan, period, dialect)
+    assert [name for name, _ in mine.results] == ["buckets"]
+    run_scan = compile_plan(scan, dialect).unit_rows
+    assert mine.unit_rows.sql(dialect=dialect) == run_scan.sql(dialect=dialect)

@@ -38,7 +38,7 @@ from metricforge.compile.checks import (
     replay_variables,
     replayable,
 )
-from metricforge.compile.query import CompiledRun, compile_plan
+from metricforge.compile.query import CompiledRun, compile_unit_rows
 from metricforge.engines.base import Engine
 from metricforge.errors import StatsError
 from metricforge.report.inference import hypothesis
@@ -110,9 +110,7 @@ def compiled_replay(plan: Plan, period: Period, dialect: str) -> CompiledRun:
     # all the replays; a bucket's few floats may then add up in another order, so figures
     # can differ in their last bits between runs (see ReplayReport.as_json).
     query = bucket_moments(plan, _prefix(period), ordered=False)
-    return CompiledRun(
-        unit_rows=compile_plan(plan, dialect).unit_rows, results=(("buckets", query),)
-    )
+    return CompiledRun(unit_rows=compile_unit_rows(plan, dialect), results=(("buckets", query),))
 
 
 def _prefix(period: Period) -> str:

@@ -433,6 +433,12 @@ def compile_plan(plan: Plan, dialect: str = "duckdb", *, ts_bounds: bool = True)
     return _Builder(plan, dialect, ts_bounds).build()
 
 
+def compile_unit_rows(plan: Plan, dialect: str = "duckdb") -> exp.Select:
+    """The run's one scan of the events alone (``CompiledRun.unit_rows``), for commands that
+    put their own result queries on it (the A/A replay): the run's results go unbuilt."""
+    return _Builder(plan, dialect).unit_rows()
+
+
 def render(plan: Plan, dialect: str = "duckdb", *, pretty: bool = True) -> str:
     """All statements of a run as SQL text, each headed by a comment with its name."""
     parts = [

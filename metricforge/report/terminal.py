@@ -63,7 +63,8 @@ def render(card: Scorecard, console: Console) -> None:
     for v in card.variants:
         console.print(
             f"  {v['variant']}: {v['units']} units analysed, {v['bot_units']} bot units removed,"
-            f" {v['contaminated_units']} seen in two variants"
+            f" {v['seen_in_two_variants']} seen in two variants"
+            f" ({v['contaminated_units']} of them excluded for it)"
         )
     for note in card.quality.get("notes", []):
         console.print(f"  data quality: {note}", markup=False)
