@@ -299,3 +299,38 @@ def test_demo_effect_equals_ols_on_unit_rows(
     assert row["abs_effect"] == pytest.approx(expected, rel=1e-9)
     assert isinstance(row["variance_reduction"], float) and 0 < row["variance_reduction"] < 1
     assert math.isfinite(float(row["p_value"]))  # type: ignore[arg-type]
+
+
+def test_small_count_proportion_keeps_fishers_exact_test(tmp_path: Path) -> None:
+    """A proportion metric whose 2×2 table has an expected cell count below 5 (common
+    practice: Fisher's exact test there, REFERENCES.md) is not CUPED-adjusted: a normal
+    approximation on the adjusted values would replace the exact test. The row shows
+    Fisher's p-value (scipy.stats.fisher_exact on the counted table, the reference
+    library) and Newcombe's interval, and says why CUPED was not applied."""
+    from scipy import stats as sst
+    from statsmodels.stats.proportion import confint_proportions_2indep
+
+    events, exposures = [], []
+    buyers = {"treatment": 4, "control": 1}
+    seen = {"treatment": 0, "control": 0}
+    for i in range(80):
+        unit, arm = f"u{i:03d}", ("control" if i % 2 else "treatment")
+        exposures.append(exposure(unit, arm))
+        events.append(event(unit, "page_view", 5))
+        if seen[arm] < buyers[arm]:
+            events.append(event(unit, "purchase", 6, value=10.0))
+            seen[arm] += 1
+        if i % 3 == 0:  # a third of the units bought before their exposure
+            events.append(event(unit, "purchase", -60 * 24, value=5.0))
+    spec = write_case(tmp_path, events, exposures, decision="buyer_share")
+    spec.write_text(spec.read_text().replace("window_days = 14\n", CUPED_SPEC_LINES))
+    card = build(execute(load_plan(spec), DuckDBEngine()))
+    (row,) = card.rows
+    fisher = sst.fisher_exact([[4, 36], [1, 39]]).pvalue
+    method, why = row["method"].split(" ", 1)
+    assert method.removesuffix("+fieller") == "newcombe+fisher"  # 1 of 40: control near 0
+    assert why == "(cuped not applied: an expected cell count is below 5)"
+    assert row["p_value"] == pytest.approx(fisher, rel=1e-12)
+    newcombe = confint_proportions_2indep(4, 40, 1, 40, method="newcomb")
+    assert (row["abs_ci_low"], row["abs_ci_high"]) == pytest.approx(newcombe, abs=1e-12)
+    assert row["variance_reduction"] is None
