@@ -76,6 +76,26 @@ def test_effect_equals_ols_with_covariate_and_indicator(seed: int, n_t: int, n_c
     assert result.effect.control_value == pytest.approx(control[:, 0].mean(), rel=1e-14)
 
 
+@settings(max_examples=25, deadline=None)
+@given(seed=st.integers(0, 2**32 - 1), n_t=st.integers(20, 400), n_c=st.integers(20, 400))
+def test_every_unit_with_pre_period_data_is_ols_y_on_t_and_x(seed: int, n_t: int, n_c: int) -> None:
+    """REFERENCES.md's cross-check in its own form: every unit has pre-period data (the
+    indicator is constant, its slope 0), so the CUPED effect is the treatment coefficient
+    of statsmodels OLS Y ~ 1 + T + X and θ its X coefficient, the within-arm pooled slope."""
+    rng = np.random.default_rng(seed)
+    control, treatment = per_unit_data(rng, n_c, 0.0), per_unit_data(rng, n_t, 0.4)
+    for d, shift in ((control, 0.0), (treatment, 0.4)):  # a pre-period value for every unit
+        d[:, 1], d[:, 2] = (d[:, 0] - shift) * rng.lognormal(0.0, 0.4, len(d)), 1.0
+    arms = {"control": vectors(control, PER_UNIT), "treatment": vectors(treatment, PER_UNIT)}
+    result = cuped_compare(arms, "treatment", "control")
+    both = np.vstack([control, treatment])
+    arm = np.r_[np.zeros(n_c), np.ones(n_t)]
+    fit = sm.OLS(both[:, 0], sm.add_constant(np.column_stack([arm, both[:, 1]]))).fit()
+    assert result.effect.abs_effect == pytest.approx(fit.params[1], abs=1e-10)
+    assert result.theta[0] == pytest.approx(fit.params[2], rel=1e-10)
+    assert result.theta[1] == 0.0
+
+
 def test_three_variants_pool_the_slope_like_ols_with_two_dummies() -> None:
     rng = np.random.default_rng(7)
     data = [per_unit_data(rng, n, s) for n, s in ((300, 0.0), (250, 0.2), (280, -0.1))]
