@@ -13,6 +13,7 @@ import itertools
 import json
 import math
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
@@ -228,6 +229,18 @@ def _factorial_case(folder: Path) -> tuple[Path, dict[str, list[float]]]:
     return write_case(folder, events, exposures, spec_text=factorial_spec(GOOD_FACTORS)), revenue
 
 
+def _scorecard_rows(
+    folder: Path, events: list[dict[str, Any]], exposures: list[dict[str, Any]], text: str
+) -> list[dict[str, Any]]:
+    """Run the case through the CLI; the scorecard's metric rows."""
+    spec = write_case(folder, events, exposures, spec_text=text)
+    out = folder / "out"
+    result = CliRunner().invoke(app, ["run", str(spec), "--out", str(out)])
+    assert result.exit_code == 0, result.output
+    rows: list[dict[str, Any]] = json.loads((out / "scorecard.json").read_text())["metrics"]
+    return rows
+
+
 def test_factorial_rows_and_adjustments_on_a_small_pipeline(tmp_path: Path) -> None:
     spec, revenue = _factorial_case(tmp_path)
     out = tmp_path / "out"
@@ -292,11 +305,7 @@ def test_quantile_metric_contrasts_are_contrasts_of_the_variants_quantiles(
     text = factorial_spec(GOOD_FACTORS).replace(
         'diagnostics = ["purchases", "buyer_share"]', 'diagnostics = ["page_latency_p95"]'
     )
-    spec = write_case(tmp_path, events, exposures, spec_text=text)
-    out = tmp_path / "out"
-    result = CliRunner().invoke(app, ["run", str(spec), "--out", str(out)])
-    assert result.exit_code == 0, result.output
-    rows = json.loads((out / "scorecard.json").read_text())["metrics"]
+    rows = _scorecard_rows(tmp_path, events, exposures, text)
     p95 = {v: float(np.quantile(x, 0.95)) for v, x in latencies.items()}  # metric_defs q
     by_name = {r["variant"]: r for r in rows if r["metric"] == "page_latency_p95"}
     for term in factorial_terms(
@@ -368,11 +377,7 @@ def test_factorial_rows_are_cuped_adjusted_on_a_pipeline(tmp_path: Path) -> None
     text = factorial_spec(GOOD_FACTORS).replace(
         "window_days = 14\n", "window_days = 14\npre_period_days = 7\ncuped = true\n"
     )
-    spec = write_case(tmp_path, events, exposures, spec_text=text)
-    out = tmp_path / "out"
-    result = CliRunner().invoke(app, ["run", str(spec), "--out", str(out)])
-    assert result.exit_code == 0, result.output
-    rows = json.loads((out / "scorecard.json").read_text())["metrics"]
+    rows = _scorecard_rows(tmp_path, events, exposures, text)
     rev = {r["variant"]: r for r in rows if r["metric"] == "revenue"}
     assert {r["method"] for r in rev.values()} == {"welch+cuped"}
     levels = {v: list(c) for v, c in cells.items()}
