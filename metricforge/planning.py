@@ -192,7 +192,12 @@ def estimate(
     if mde is None and days is None:
         raise SpecError("give --mde (units and days needed), --days (the MDE), or both")
     if days is not None and days < 1:
-        raise SpecError("--days must be at least 1", key="--days")
+        raise SpecError(f"must be at least 1, is {days}", key="--days")
+    if not plan.spec.alpha < power < 1.0:  # before the scan, not after it
+        raise SpecError(
+            f"must lie strictly between the spec's alpha {plan.spec.alpha:g} and 1, is {power:g}",
+            key="--power",
+        )
     inputs, _ = gather_inputs(plan)
     compiled = compile_plan(plan, engine.dialect)
     run = CompiledRun(compiled.unit_rows, history_results(plan))

@@ -157,6 +157,35 @@ def test_replay_p_values_with_cuped_are_the_scorecard_p_values(
         assert got[k - 1][0] == pytest.approx(effect.p_value, rel=1e-9, abs=1e-300)
 
 
+@pytest.mark.parametrize(("buyers", "exact"), [((2, 5), True), ((60, 75), False)])
+def test_replay_of_a_cuped_proportion_keeps_fisher_for_small_counts(
+    buyers: tuple[int, int], exact: bool
+) -> None:
+    """A CUPED-enabled proportion: with an expected cell count below 5 the scorecard keeps
+    Fisher's exact test on the counts (no adjustment), otherwise it adjusts; the replay
+    does the same."""
+    rng = np.random.default_rng(4)
+    data = []
+    for k, n in enumerate((300, 320)):
+        x = np.zeros(n)
+        x[: buyers[k]] = 1.0
+        h = (rng.random(n) < 0.5).astype(float)
+        data.append(np.column_stack([x, h * (x + rng.random(n)), h]))
+    vectors = {f"v{k}": cuped_vectors(d, PER_UNIT) for k, d in enumerate(data)}
+    arms = [
+        ArmMoments(PER_UNIT, np.array([float(v.n)]), np.array([v.mean]), np.array([v.cov]))
+        for v in vectors.values()
+    ]
+    (got,) = p_values(arms, proportion=True)
+    t, c = (Moments.of_proportion(len(d), buyers[k]) for k, d in ((1, data[1]), (0, data[0])))
+    if exact:
+        expected = compare(t, c)
+        assert expected.method.startswith("newcombe+fisher")
+    else:
+        expected = cuped_compare(vectors, "v1", "v0").effect
+    assert got[0] == pytest.approx(expected.p_value, rel=1e-9)
+
+
 # --------------------------------------------------------------------------- merging
 
 

@@ -76,6 +76,26 @@ def test_effect_equals_ols_with_covariate_and_indicator(seed: int, n_t: int, n_c
     assert result.effect.control_value == pytest.approx(control[:, 0].mean(), rel=1e-14)
 
 
+@settings(max_examples=25, deadline=None)
+@given(seed=st.integers(0, 2**32 - 1), n_t=st.integers(20, 400), n_c=st.integers(20, 400))
+def test_every_unit_with_pre_period_data_is_ols_y_on_t_and_x(seed: int, n_t: int, n_c: int) -> None:
+    """REFERENCES.md's cross-check in its own form: every unit has pre-period data (the
+    indicator is constant, its slope 0), so the CUPED effect is the treatment coefficient
+    of statsmodels OLS Y ~ 1 + T + X and θ its X coefficient, the within-arm pooled slope."""
+    rng = np.random.default_rng(seed)
+    control, treatment = per_unit_data(rng, n_c, 0.0), per_unit_data(rng, n_t, 0.4)
+    for d, shift in ((control, 0.0), (treatment, 0.4)):  # a pre-period value for every unit
+        d[:, 1], d[:, 2] = (d[:, 0] - shift) * rng.lognormal(0.0, 0.4, len(d)), 1.0
+    arms = {"control": vectors(control, PER_UNIT), "treatment": vectors(treatment, PER_UNIT)}
+    result = cuped_compare(arms, "treatment", "control")
+    both = np.vstack([control, treatment])
+    arm = np.r_[np.zeros(n_c), np.ones(n_t)]
+    fit = sm.OLS(both[:, 0], sm.add_constant(np.column_stack([arm, both[:, 1]]))).fit()
+    assert result.effect.abs_effect == pytest.approx(fit.params[1], abs=1e-10)
+    assert result.theta[0] == pytest.approx(fit.params[2], rel=1e-10)
+    assert result.theta[1] == 0.0
+
+
 def test_three_variants_pool_the_slope_like_ols_with_two_dummies() -> None:
     rng = np.random.default_rng(7)
     data = [per_unit_data(rng, n, s) for n, s in ((300, 0.0), (250, 0.2), (280, -0.1))]
@@ -299,3 +319,38 @@ def test_demo_effect_equals_ols_on_unit_rows(
     assert row["abs_effect"] == pytest.approx(expected, rel=1e-9)
     assert isinstance(row["variance_reduction"], float) and 0 < row["variance_reduction"] < 1
     assert math.isfinite(float(row["p_value"]))  # type: ignore[arg-type]
+
+
+def test_small_count_proportion_keeps_fishers_exact_test(tmp_path: Path) -> None:
+    """A proportion metric whose 2×2 table has an expected cell count below 5 (common
+    practice: Fisher's exact test there, REFERENCES.md) is not CUPED-adjusted: a normal
+    approximation on the adjusted values would replace the exact test. The row shows
+    Fisher's p-value (scipy.stats.fisher_exact on the counted table, the reference
+    library) and Newcombe's interval, and says why CUPED was not applied."""
+    from scipy import stats as sst
+    from statsmodels.stats.proportion import confint_proportions_2indep
+
+    events, exposures = [], []
+    buyers = {"treatment": 4, "control": 1}
+    seen = {"treatment": 0, "control": 0}
+    for i in range(80):
+        unit, arm = f"u{i:03d}", ("control" if i % 2 else "treatment")
+        exposures.append(exposure(unit, arm))
+        events.append(event(unit, "page_view", 5))
+        if seen[arm] < buyers[arm]:
+            events.append(event(unit, "purchase", 6, value=10.0))
+            seen[arm] += 1
+        if i % 3 == 0:  # a third of the units bought before their exposure
+            events.append(event(unit, "purchase", -60 * 24, value=5.0))
+    spec = write_case(tmp_path, events, exposures, decision="buyer_share")
+    spec.write_text(spec.read_text().replace("window_days = 14\n", CUPED_SPEC_LINES))
+    card = build(execute(load_plan(spec), DuckDBEngine()))
+    (row,) = card.rows
+    fisher = sst.fisher_exact([[4, 36], [1, 39]]).pvalue
+    method, why = row["method"].split(" ", 1)
+    assert method.removesuffix("+fieller") == "newcombe+fisher"  # 1 of 40: control near 0
+    assert why == "(cuped not applied: an expected cell count is below 5)"
+    assert row["p_value"] == pytest.approx(fisher, rel=1e-12)
+    newcombe = confint_proportions_2indep(4, 40, 1, 40, method="newcomb")
+    assert (row["abs_ci_low"], row["abs_ci_high"]) == pytest.approx(newcombe, abs=1e-12)
+    assert row["variance_reduction"] is None

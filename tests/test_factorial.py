@@ -13,6 +13,7 @@ import itertools
 import json
 import math
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
@@ -228,6 +229,18 @@ def _factorial_case(folder: Path) -> tuple[Path, dict[str, list[float]]]:
     return write_case(folder, events, exposures, spec_text=factorial_spec(GOOD_FACTORS)), revenue
 
 
+def _scorecard_rows(
+    folder: Path, events: list[dict[str, Any]], exposures: list[dict[str, Any]], text: str
+) -> list[dict[str, Any]]:
+    """Run the case through the CLI; the scorecard's metric rows."""
+    spec = write_case(folder, events, exposures, spec_text=text)
+    out = folder / "out"
+    result = CliRunner().invoke(app, ["run", str(spec), "--out", str(out)])
+    assert result.exit_code == 0, result.output
+    rows: list[dict[str, Any]] = json.loads((out / "scorecard.json").read_text())["metrics"]
+    return rows
+
+
 def test_factorial_rows_and_adjustments_on_a_small_pipeline(tmp_path: Path) -> None:
     spec, revenue = _factorial_case(tmp_path)
     out = tmp_path / "out"
@@ -292,11 +305,7 @@ def test_quantile_metric_contrasts_are_contrasts_of_the_variants_quantiles(
     text = factorial_spec(GOOD_FACTORS).replace(
         'diagnostics = ["purchases", "buyer_share"]', 'diagnostics = ["page_latency_p95"]'
     )
-    spec = write_case(tmp_path, events, exposures, spec_text=text)
-    out = tmp_path / "out"
-    result = CliRunner().invoke(app, ["run", str(spec), "--out", str(out)])
-    assert result.exit_code == 0, result.output
-    rows = json.loads((out / "scorecard.json").read_text())["metrics"]
+    rows = _scorecard_rows(tmp_path, events, exposures, text)
     p95 = {v: float(np.quantile(x, 0.95)) for v, x in latencies.items()}  # metric_defs q
     by_name = {r["variant"]: r for r in rows if r["metric"] == "page_latency_p95"}
     for term in factorial_terms(
@@ -312,3 +321,70 @@ def test_quantile_metric_contrasts_are_contrasts_of_the_variants_quantiles(
     main, inter = by_name["main:photo_size"], by_name["interaction:photo_size*button_colour"]
     half = (main["abs_ci_high"] - main["abs_ci_low"]) / 2
     assert half == pytest.approx((inter["abs_ci_high"] - inter["abs_ci_low"]) / 4, rel=1e-9)
+
+
+# --------------------------------------------------------------------------- CUPED
+
+
+@pytest.mark.parametrize("seed", [3, 4])
+def test_cuped_contrasts_equal_saturated_ols_with_the_covariates(seed: int) -> None:
+    """With CUPED the contrasts are those of the variants' adjusted values (θ the
+    within-variant slope pooled over all variants): the coefficients of statsmodels OLS of
+    the saturated model plus the pre-period covariate and its indicator, to 1e-10."""
+    from metricforge.stats.cuped import PER_UNIT, cuped_arms
+    from tests.test_cuped import per_unit_data, vectors
+
+    rng = np.random.default_rng(seed)
+    names, levels = _design(2)
+    data, cell_of = {}, []
+    for variant, cell in levels.items():
+        n = int(rng.integers(60, 160))
+        data[variant] = per_unit_data(rng, n, 0.3 * cell[0] + 0.2 * cell[1] + 0.4 * np.prod(cell))
+        cell_of += [variant] * n
+    both = np.vstack(list(data.values()))
+    design = np.column_stack([_ols_columns(levels, cell_of, 2), both[:, 1], both[:, 2]])
+    fit = sm.OLS(both[:, 0], design).fit()
+    cuped = cuped_arms({v: vectors(d, PER_UNIT) for v, d in data.items()}, list(levels))
+    for i, term in enumerate(factorial_terms(names, levels), start=1):
+        res = contrast([cuped.adjusted[v] for v in term.weights], list(term.weights.values()))
+        assert res.estimate == pytest.approx(fit.params[i], abs=1e-10)
+    assert cuped.theta == pytest.approx(tuple(fit.params[4:]), rel=1e-10)
+
+
+def test_factorial_rows_are_cuped_adjusted_on_a_pipeline(tmp_path: Path) -> None:
+    """A 2×2 with CUPED on: the arm rows and the contrast rows are both adjusted; the
+    interaction equals OLS on the per-unit values (statsmodels, saturated model plus the
+    pre-period covariate and indicator) and reports its variance reduction."""
+    rng = np.random.default_rng(12)
+    events, exposures = [], []
+    shift = {"control": 0.0, "big_photo": 3.0, "red_button": 1.0, "big_red": 9.0}
+    cells = {"control": (0, 0), "big_photo": (1, 0), "red_button": (0, 1), "big_red": (1, 1)}
+    value, pre, has, cell_of = [], [], [], []
+    for variant in shift:
+        for i in range(40):
+            unit = f"{variant}-{i:02d}"
+            exposures.append(exposure(unit, variant))
+            level = float(rng.gamma(2.0, 5.0))
+            spend = round(level + shift[variant] + float(rng.normal(0, 1)), 2)
+            events.append(event(unit, "purchase", 2, value=spend))
+            before = round(level + float(rng.normal(0, 1)), 2) if i % 3 else 0.0
+            if i % 3:  # two thirds of the units bought before their exposure
+                events.append(event(unit, "purchase", -60 * 24, value=before))
+            value.append(spend)
+            pre.append(before)
+            has.append(1.0 if i % 3 else 0.0)
+            cell_of.append(variant)
+    text = factorial_spec(GOOD_FACTORS).replace(
+        "window_days = 14\n", "window_days = 14\npre_period_days = 7\ncuped = true\n"
+    )
+    rows = _scorecard_rows(tmp_path, events, exposures, text)
+    rev = {r["variant"]: r for r in rows if r["metric"] == "revenue"}
+    assert {r["method"] for r in rev.values()} == {"welch+cuped"}
+    levels = {v: list(c) for v, c in cells.items()}
+    design = np.column_stack([_ols_columns(levels, cell_of, 2), pre, has])
+    fit = sm.OLS(np.array(value), design).fit()
+    inter = rev["interaction:photo_size*button_colour"]
+    assert inter["abs_effect"] == pytest.approx(fit.params[3], rel=1e-9)
+    assert rev["main:photo_size"]["abs_effect"] == pytest.approx(fit.params[1], rel=1e-9)
+    assert 0 < inter["variance_reduction"] < 1
+    assert inter["abs_ci_low"] < inter["abs_effect"] < inter["abs_ci_high"]

@@ -186,7 +186,13 @@ def test_plan_command_runs_on_the_demo() -> None:
 
 @pytest.mark.parametrize(
     ("args", "message"),
-    [([], "give --mde"), (["--mde", "lots"], "--mde"), (["--days", "0"], "--days")],
+    [
+        ([], "give --mde"),
+        (["--mde", "lots"], "--mde"),
+        (["--days", "0"], "--days: must be at least 1"),
+        (["--mde", "2%", "--power", "1.5"], "--power: must lie strictly between"),
+        (["--days", "7", "--power", "0.01"], "--power"),
+    ],
 )
 def test_plan_command_bad_input(args: list[str], message: str, tmp_path: Path) -> None:
     result = CliRunner().invoke(app, ["plan", str(PIPELINES / "checkout_layout.toml"), *args])

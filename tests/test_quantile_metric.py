@@ -102,6 +102,30 @@ def test_band_respects_clustering(seed: int, copies: int) -> None:
     assert once[1] - Q > 1.2 * iid_half
 
 
+@pytest.mark.parametrize(
+    ("seed", "n", "q"), [(1, 2000, 0.95), (2, 500, 0.5), (3, 5000, 0.99), (4, 300, 0.9)]
+)
+def test_band_with_one_value_per_unit_is_the_order_statistic_interval(
+    seed: int, n: int, q: float
+) -> None:
+    """Reference library: with one value per unit the outer interval is the normal
+    approximation of the distribution-free confidence interval of a quantile, whose ends
+    are order statistics chosen from the binomial distribution (scipy.stats.quantile_test
+    ... confidence_interval). The band's ends, as positions in the sorted values, lie
+    within 1.5 positions of scipy's order statistics (the exact interval is never
+    narrower than the stated level, so it is the wider one by about a position)."""
+    rng = np.random.default_rng(seed)
+    values = np.sort(rng.lognormal(6.0, 0.5, n))
+    point = float(np.quantile(values, q))
+    low, high = rank_band(below_moments([np.array([v]) for v in values], point), q, 0.05)
+    exact = sst.quantile_test(values, q=point, p=q).confidence_interval(0.95)
+    exact_low = int(np.searchsorted(values, exact.low))
+    exact_high = int(np.searchsorted(values, exact.high))
+    assert values[exact_low] == exact.low and values[exact_high] == exact.high
+    assert low * (n - 1) == pytest.approx(exact_low, abs=1.5)
+    assert high * (n - 1) == pytest.approx(exact_high, abs=1.5)
+
+
 def summary(q_hat: float, low: float, high: float, below: Moments) -> QuantileSummary:
     band = rank_band(below, Q, 0.05)
     return QuantileSummary(q_hat, 1000, below, band[0], band[1], low, high)

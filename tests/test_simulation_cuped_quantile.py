@@ -90,16 +90,21 @@ def test_cuped_per_unit_metric_coverage(effect: float) -> None:
         assert lo <= share <= hi, (share, lo, hi)
 
 
-def test_cuped_ratio_metric_coverage() -> None:
-    runs, n, lift = 4000, 300, 0.08
-    rng = np.random.default_rng(20260917)
+@pytest.mark.parametrize("lift", [0.08, 0.0], ids=["effect", "aa"])
+def test_cuped_ratio_metric_coverage(lift: float) -> None:
+    runs, n = 4000, 300
+    rng = np.random.default_rng(20260917 if lift else 20260920)
     control = arm_vectors(ratio_arm(rng, runs, n, 0.0), RATIO)
     treatment = arm_vectors(ratio_arm(rng, runs, n, lift), RATIO)
     truth = 0.25 * lift  # E[click rate] · lift, the rate independent of traffic
-    low, high, _, reduction = run_cuped(treatment, control)
+    low, high, p, reduction = run_cuped(treatment, control)
     covered = np.mean((low <= truth) & (truth <= high))
     assert 0.94 <= covered <= 0.96, covered
     assert np.median(reduction) > 0.1
+    if lift == 0.0:
+        share = float(np.mean(p < ALPHA))
+        lo, hi = aa_band(runs)
+        assert lo <= share <= hi, (share, lo, hi)
 
 
 # --------------------------------------------------------------------------- quantiles

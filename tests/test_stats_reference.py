@@ -181,6 +181,14 @@ def test_delta_method_equals_clustered_ols(seed: int, binary: bool) -> None:
     assert effect.control_value == pytest.approx(fit.params[0], rel=1e-10)
     assert effect.abs_effect == pytest.approx(fit.params[1], rel=1e-10)
     assert math.sqrt(v_t + v_c) == pytest.approx(fit.bse[1], rel=1e-10)
+    # statsmodels' default small-sample correction multiplies the variance by
+    # G/(G − 1)·(N − 1)/(N − K) (REFERENCES.md): G clusters, N events, K = 2 parameters
+    corrected = sm.OLS(y, sm.add_constant(treated)).fit(
+        cov_type="cluster", cov_kwds={"groups": groups}
+    )
+    g, n_events = 550, y.size
+    factor = g / (g - 1) * (n_events - 1) / (n_events - 2)
+    assert corrected.bse[1] ** 2 == pytest.approx((v_t + v_c) * factor, rel=1e-10)
     # Relative effect: the same delta step applied to statsmodels' clustered covariance of
     # (a, b) = (control, treatment - control); rel = b/a, gradient (-b/a^2, 1/a).
     a, b = fit.params

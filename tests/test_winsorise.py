@@ -12,6 +12,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from scipy import stats as sst
 from typer.testing import CliRunner
 
 from metricforge.cli import app
@@ -93,6 +94,13 @@ def test_caps_equal_numpy_quantiles_of_the_pooled_per_unit_values(tmp_path: Path
     assert rows["spend"]["cap"] == pytest.approx(cap, rel=1e-12)
     assert rows["spend"]["value"] == pytest.approx(capped[t].mean(), rel=1e-12)
     assert rows["spend"]["control_value"] == pytest.approx(capped[~t].mean(), rel=1e-12)
+    # the test and CI are on the capped values (reference library: scipy's Welch test)
+    welch = sst.ttest_ind(capped[t], capped[~t], equal_var=False)
+    ci = welch.confidence_interval(0.95)
+    assert rows["spend"]["p_value"] == pytest.approx(welch.pvalue, rel=1e-9)
+    assert (rows["spend"]["abs_ci_low"], rows["spend"]["abs_ci_high"]) == pytest.approx(
+        (ci.low, ci.high), rel=1e-9
+    )
 
     # ratio: the numerator is capped (the same per-unit spend), the denominator is not
     assert rows["per_order"]["cap"] == pytest.approx(cap, rel=1e-12)

@@ -12,6 +12,7 @@ from metricforge.runner import RunData
 from metricforge.spec.model import Kind
 from metricforge.stats import Effect, compare
 from metricforge.stats.cuped import CupedEffect, cuped_compare
+from metricforge.stats.proportions import FISHER_BELOW, small_counts
 from metricforge.stats.quantiles import quantile_compare
 
 EXTRA_COLUMNS = ("variance_reduction", "cap")
@@ -22,6 +23,9 @@ def _cuped(data: RunData, metric: str, variant: str, **test: Any) -> CupedEffect
     if arms is None:
         return None
     control, alpha = data.plan.spec.control, data.plan.spec.alpha
+    if small_counts(data.moments[metric][variant], data.moments[metric][control]):
+        # a normal approximation on adjusted values would replace the exact test
+        raise StatsError(f"an expected cell count is below {FISHER_BELOW:g}")
     return cuped_compare(arms, variant, control, alpha=alpha, **test)
 
 
@@ -31,9 +35,10 @@ def adjusted_effect(
     """The effect of a quantile or CUPED-adjusted metric; None for every other metric.
 
     ``side`` and ``margin`` choose the p-value's hypothesis (0: two-sided; see
-    ``stats.quantiles.quantile_compare``). CUPED that cannot be applied (e.g. a compared
-    variant without any pre-period data) falls back to the unadjusted effect and says why
-    in `method`.
+    ``stats.quantiles.quantile_compare``). CUPED that cannot be applied (a compared
+    variant without any pre-period data; a proportion whose 2×2 table has an expected cell
+    count below 5, which keeps Fisher's exact test) falls back to the unadjusted effect and
+    says why in `method`.
     """
     control, alpha = data.plan.spec.control, data.plan.spec.alpha
     # passed to compare only when not the default, which every version of it accepts

@@ -9,11 +9,12 @@
 - Diagnostics: two-sided; Benjamini–Hochberg adjusted across every diagnostic metric and
   treatment arm of the experiment (family: all diagnostic comparisons).
 - Factorial contrasts (``[factors]``): main effects and interactions, two-sided, not
-  adjusted.
+  adjusted; with CUPED, contrasts of the variants' CUPED-adjusted values.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections.abc import Callable
 from typing import Any
@@ -22,6 +23,7 @@ from metricforge.errors import StatsError
 from metricforge.runner import RunData
 from metricforge.spec.model import Direction, MetricDef, Role
 from metricforge.stats.contrasts import ContrastResult, contrast, factorial_terms
+from metricforge.stats.cuped import cuped_arms
 from metricforge.stats.moments import FloatArray
 from metricforge.stats.multiplicity import benjamini_hochberg, holm
 from metricforge.stats.quantiles import QuantileSummary, quantile_contrast
@@ -86,10 +88,10 @@ def factorial_rows(
         row["n_units"] = sum(moments[v].n for v, w in term.weights.items() if w > 0)
         row["n_units_control"] = sum(moments[v].n for v, w in term.weights.items() if w < 0)
         try:
-            if quantiles is None:
-                res = contrast([moments[v] for v in variants], weights, alpha=spec.alpha)
-            else:  # a quantile metric: its variants' quantiles, not per-unit moments
+            if quantiles is not None:  # a quantile metric: its variants' quantiles
                 res = _quantile_contrast(data, metric, quantiles, variants, weights)
+            else:
+                res = _moments_contrast(data, metric, variants, weights, row)
         except StatsError as err:
             row["method"] = f"not computed: {err.message}"
             rows.append(row)
@@ -101,10 +103,42 @@ def factorial_rows(
             abs_ci_low=res.ci_low,
             abs_ci_high=res.ci_high,
             p_value=res.p_value,
-            method=res.method,
+            method=res.method if row["method"] == "" else row["method"],
         )
         rows.append(row)
     return rows
+
+
+def _moments_contrast(
+    data: RunData, metric: str, variants: list[str], weights: list[float], row: dict[str, Any]
+) -> ContrastResult:
+    """The contrast of the variants' values; with CUPED, of their adjusted values (θ pooled
+    over all variants, as the arm rows): ``row`` then gets the method and the variance
+    reduction, or says in ``method`` why CUPED was not applied."""
+    alpha = data.plan.spec.alpha
+    moments = data.moments[metric]
+    arms = data.extras.cuped.get(metric)
+    if arms is None:
+        return contrast([moments[v] for v in variants], weights, alpha=alpha)
+    try:
+        cuped = cuped_arms(arms, variants)
+        res = contrast([cuped.adjusted[v] for v in variants], weights, alpha=alpha)
+    except StatsError as err:
+        res = contrast([moments[v] for v in variants], weights, alpha=alpha)
+        row["method"] = f"{res.method} (cuped not applied: {err.message})"
+        return res
+    after = math.fsum(
+        w * w * cuped.adjusted[v].var_x / cuped.adjusted[v].n
+        for v, w in zip(variants, weights, strict=True)
+    )
+    before = math.fsum(w * w * cuped.plain[v] for v, w in zip(variants, weights, strict=True))
+    row["method"] = cuped.method
+    row["variance_reduction"] = 1.0 - after / before if before > 0 else 0.0
+    # the adjusted contrast, split into its positive and negative parts of observed values
+    observed = [w * cuped.observed[v] for v, w in zip(variants, weights, strict=True)]
+    positive = math.fsum(x for x, w in zip(observed, weights, strict=True) if w > 0)
+    negative = 0.0 - math.fsum(x for x, w in zip(observed, weights, strict=True) if w < 0)
+    return dataclasses.replace(res, positive=positive, negative=negative)
 
 
 def _quantile_contrast(

@@ -193,6 +193,55 @@ def cuped_batch(names: tuple[str, ...], arms: Sequence[VectorsBatch]) -> CupedBa
     return out
 
 
+@dataclass(frozen=True)
+class CupedArms:
+    """Every variant's CUPED-adjusted moments from ``cuped_arms``, by variant name."""
+
+    ratio: bool
+    adjusted: dict[str, Moments]  # n, the adjusted value, the variance of the residual
+    observed: dict[str, float]  # the unadjusted value (mean, or ratio)
+    plain: dict[str, float]  # the variance of the unadjusted estimate (already over n)
+    theta: tuple[float, float]  # slopes on (covariate, indicator)
+
+    @property
+    def method(self) -> str:
+        return ("delta" if self.ratio else "welch") + "+cuped"
+
+
+def cuped_arms(arms: Mapping[str, UnitVectors], compared: Sequence[str]) -> CupedArms:
+    """The CUPED-adjusted moments of every variant in ``arms`` (all analysed variants of
+    the experiment; θ is pooled over them). A StatsError unless each ``compared`` variant
+    has at least 2 units and some unit with pre-period data."""
+    layouts = {a.names for a in arms.values()}
+    if len(layouts) != 1 or next(iter(layouts)) not in (PER_UNIT, RATIO):
+        raise StatsError(f"CUPED moments must name the variables {PER_UNIT} or {RATIO}")
+    names = layouts.pop()
+    for variant in compared:
+        if arms[variant].n < 2:
+            raise StatsError(f"needs at least 2 units, has {arms[variant].n}")
+        if arms[variant].mean[arms[variant].names.index("h")] == 0:
+            raise StatsError(f"no unit of variant '{variant}' has pre-period data")
+    order = list(arms)
+    batches = [VectorsBatch.of(arms[v]) for v in order]
+    if names == RATIO and any(b.mean[0, names.index("y")] == 0 for b in batches):
+        raise StatsError("the denominator's mean is zero for this variant")
+    result = cuped_batch(names, batches)
+    adjusted = {
+        v: Moments.of_mean(
+            arms[v].n, float(result.adjusted[k].mean_x[0]), float(result.adjusted[k].var_x[0])
+        )
+        for k, v in enumerate(order)
+    }
+    theta = result.theta[0]
+    return CupedArms(
+        ratio=names == RATIO,
+        adjusted=adjusted,
+        observed={v: float(result.observed[k][0]) for k, v in enumerate(order)},
+        plain={v: float(result.plain[k][0]) for k, v in enumerate(order)},
+        theta=(float(theta[0]), float(theta[1])),
+    )
+
+
 def cuped_compare(
     arms: Mapping[str, UnitVectors],
     treatment: str,
@@ -204,38 +253,16 @@ def cuped_compare(
     """The CUPED-adjusted effect of ``treatment`` against ``control``; θ is pooled over every
     variant in ``arms`` (all analysed variants of the experiment). ``test`` holds further
     options of ``compare`` (the hypothesis of the p-value), passed on unchanged."""
-    layouts = {a.names for a in arms.values()}
-    if len(layouts) != 1 or next(iter(layouts)) not in (PER_UNIT, RATIO):
-        raise StatsError(f"CUPED moments must name the variables {PER_UNIT} or {RATIO}")
-    names = layouts.pop()
-    for variant in (treatment, control):
-        if arms[variant].n < 2:
-            raise StatsError(f"needs at least 2 units, has {arms[variant].n}")
-        if arms[variant].mean[arms[variant].names.index("h")] == 0:
-            raise StatsError(f"no unit of variant '{variant}' has pre-period data")
-    order = list(arms)
-    batches = [VectorsBatch.of(arms[v]) for v in order]
-    if names == RATIO and any(b.mean[0, names.index("y")] == 0 for b in batches):
-        raise StatsError("the denominator's mean is zero for this variant")
-    result = cuped_batch(names, batches)
-    t, c = order.index(treatment), order.index(control)
-    adjusted = {
-        k: Moments.of_mean(
-            arms[order[k]].n,
-            float(result.adjusted[k].mean_x[0]),
-            float(result.adjusted[k].var_x[0]),
-        )
-        for k in (t, c)
-    }
-    effect = compare(adjusted[t], adjusted[c], alpha=alpha, **test)
-    after = sum(m.var_x / m.n for m in adjusted.values())
-    plain = float(result.plain[t][0] + result.plain[c][0])
+    cuped = cuped_arms(arms, (treatment, control))
+    t, c = cuped.adjusted[treatment], cuped.adjusted[control]
+    effect = compare(t, c, alpha=alpha, **test)
+    after = t.var_x / t.n + c.var_x / c.n
+    plain = cuped.plain[treatment] + cuped.plain[control]
     effect = dataclasses.replace(
         effect,
-        value=float(result.observed[t][0]),
-        control_value=float(result.observed[c][0]),
-        method=("delta" if names == RATIO else "welch") + "+cuped",
+        value=cuped.observed[treatment],
+        control_value=cuped.observed[control],
+        method=cuped.method,
     )
     reduction = 1.0 - after / plain if plain > 0 else 0.0
-    theta = result.theta[0]
-    return CupedEffect(effect, reduction, (float(theta[0]), float(theta[1])))
+    return CupedEffect(effect, reduction, cuped.theta)

@@ -13,7 +13,7 @@ import numpy as np
 import numpy.typing as npt
 
 from metricforge.stats.dist import norm_sf
-from metricforge.stats.moments import FloatArray
+from metricforge.stats.moments import FloatArray, Moments
 
 FISHER_BELOW = 5.0  # smallest expected cell count for which the z-test is used
 
@@ -48,6 +48,14 @@ def needs_exact(
     hits = s_t + s_c
     smallest = np.minimum(n_t, n_c) * np.minimum(hits, total - hits) / total
     return smallest < FISHER_BELOW
+
+
+def small_counts(treatment: Moments, control: Moments) -> bool:
+    """True when both are proportions and their 2×2 table needs Fisher's exact test."""
+    if treatment.successes is None or control.successes is None:
+        return False
+    counts = (treatment.successes, treatment.n, control.successes, control.n)
+    return bool(needs_exact(*(np.array([float(v)]) for v in counts))[0])
 
 
 def z_test(

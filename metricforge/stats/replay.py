@@ -27,6 +27,7 @@ from metricforge.errors import StatsError
 from metricforge.stats.cuped import PER_UNIT, RATIO, VectorsBatch, cuped_batch
 from metricforge.stats.effects import compare_batch
 from metricforge.stats.moments import MomentsBatch
+from metricforge.stats.proportions import needs_exact
 
 Array = npt.NDArray[np.float64]
 IntArray = npt.NDArray[np.int64]
@@ -200,7 +201,8 @@ def p_values(
     ``margin``) on the arms' moments; when the variables carry CUPED covariates
     (``stats.cuped.PER_UNIT`` or ``RATIO``), on the moments adjusted by ``cuped_batch``
     (θ pooled over all arms), falling back to the unadjusted test where an arm has no
-    pre-period data, as the scorecard does. NaN where an arm has fewer than two units."""
+    pre-period data or a proportion's 2×2 table needs Fisher's exact test, as the
+    scorecard does. NaN where an arm has fewer than two units."""
 
     def tested(t: MomentsBatch, c: MomentsBatch) -> Array:
         return compare_batch(t, c, alpha=alpha, side=side, margin=margin).p_value
@@ -217,6 +219,9 @@ def p_values(
         p = tested(plain[k], plain[0])
         if adjusted is not None:
             usable = adjusted.has_pre[k] & adjusted.has_pre[0]
+            t, c = plain[k], plain[0]
+            if t.successes is not None and c.successes is not None:  # small counts: exact
+                usable &= ~needs_exact(t.successes, t.n, c.successes, c.n)
             p = np.where(usable, tested(adjusted.adjusted[k], adjusted.adjusted[0]), p)
         few = (arms[k].n < 2) | (arms[0].n < 2)
         out.append(np.where(few, np.nan, p).astype(np.float64))
