@@ -199,7 +199,11 @@ class DuckDBEngine:
                         with watch(con, self.progress):
                             con.execute(store)
                         tables = results_in_unit_order(
-                            con, results, memory_limit=self.memory_limit, on_open=running.append
+                            con,
+                            results,
+                            memory_limit=self.memory_limit,
+                            temp_dir=Path(tmp) / "ordered",
+                            on_open=running.append,
                         )
                         tables = {name: arrow_result(t) for name, t in tables.items()}
                     except duckdb.Error as err:
