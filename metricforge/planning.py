@@ -33,6 +33,7 @@ from rich.table import Table
 
 from metricforge.compile.history import half_columns, history_results
 from metricforge.compile.query import CompiledRun, compile_plan
+from metricforge.data_errors import run_naming_failures
 from metricforge.engines.base import Engine
 from metricforge.errors import InputDataError, SpecError, StatsError
 from metricforge.runner import gather_inputs
@@ -201,7 +202,7 @@ def estimate(
     inputs, _ = gather_inputs(plan)
     compiled = compile_plan(plan, engine.dialect)
     run = CompiledRun(compiled.unit_rows, history_results(plan))
-    tables = engine.run(run, inputs)
+    tables = run_naming_failures(plan, engine, run, inputs)
     spec = plan.spec
     exposure_days = max(1, math.ceil((spec.end - spec.start).total_seconds() / 86400))
     counts = {int(r["first_day"]): int(r["n_units"]) for r in tables["arrivals"].to_pylist()}

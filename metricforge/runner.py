@@ -14,6 +14,7 @@ import pyarrow as pa
 from metricforge.adjustments import Extras, read_extras
 from metricforge.compile.expressions import columns_of
 from metricforge.compile.query import compile_plan, result_columns
+from metricforge.data_errors import run_naming_failures
 from metricforge.engines.base import Engine, EngineInputs
 from metricforge.errors import InputDataError
 from metricforge.inputs import (
@@ -187,7 +188,8 @@ def execute(plan: Plan, engine: Engine) -> RunData:
     # Remote data (no local paths) keeps the bound: its footers are not read a second time.
     remote = bool(engine_inputs.event_uris) and not engine_inputs.events
     bounded = remote or not inside_window(engine_inputs.events, *event_window(plan))
-    tables = engine.run(compile_plan(plan, engine.dialect, ts_bounds=bounded), engine_inputs)
+    compiled = compile_plan(plan, engine.dialect, ts_bounds=bounded)
+    tables = run_naming_failures(plan, engine, compiled, engine_inputs)
     data = reshape(plan, stamp, files, tables["moments"])
     data.tables = tables
     data.extras = read_extras(plan, tables)

@@ -21,6 +21,7 @@ from metricforge.cli import app
 from metricforge.compile.query import UNIT_TABLE, CompiledRun, compile_plan
 from metricforge.engines.duckdb import DuckDBEngine, hardened_connection
 from metricforge.engines.guard import checked_statements
+from metricforge.engines.unit_order import one_thread_connection
 from metricforge.engines.watchdog import QueryTimeoutError, Watchdog
 from metricforge.errors import EngineError
 from metricforge.runner import gather_inputs
@@ -257,6 +258,39 @@ def test_checked_statements_of_a_real_run(compiled: CompiledRun) -> None:
     for name, sql in checked_statements(compiled, "duckdb"):
         kinds = [s.type.name for s in duckdb.extract_statements(sql)]
         assert kinds == (["CREATE"] if name == UNIT_TABLE else ["SELECT"])
+
+
+def test_the_result_connection_spills_only_into_its_private_folder(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """The second, one-thread DuckDB (engines/unit_order.py) under a memory limit it must
+    exceed: it spills into the folder it was given, never into ``.tmp`` of the current
+    folder, and it stays locked (no file access, no setting changes)."""
+    cwd, spill, secret = tmp_path / "cwd", tmp_path / "spill", tmp_path / "secret"
+    for folder in (cwd, secret):
+        folder.mkdir()
+    (secret / "canary.txt").write_text(CANARY, encoding="utf-8")
+    monkeypatch.chdir(cwd)
+    n = 1_000_000
+    units = pa.table(
+        {"unit": pa.array(range(n)), "label": pa.array([f"{i:09d}" for i in range(n)])}
+    )
+    con = one_thread_connection(units, "30MB", spill)
+    seen: set[str] = set()
+    try:
+        setting = con.sql("SELECT current_setting('temp_directory')").fetchall()
+        assert setting == [(str(spill),)]
+        query = f"SELECT label, COUNT(*) AS n FROM {UNIT_TABLE} GROUP BY label ORDER BY label DESC"
+        assert con.sql(query).to_arrow_table().num_rows == n
+        seen.update(p.name for p in spill.iterdir())  # kept until the connection closes
+        assert "disabled by configuration" in _fails(
+            con, f"SELECT * FROM read_text('{secret}/canary.txt')"
+        )
+        assert "configuration has been locked" in _fails(con, "SET temp_directory = '.tmp'")
+    finally:
+        con.close()
+    assert any(name.startswith("duckdb_temp") for name in seen), seen
+    assert list(cwd.iterdir()) == []
 
 
 # -- the timeout --------------------------------------------------------------------------

@@ -16,7 +16,15 @@ import sqlglot.expressions as exp
 
 from metricforge.compile.query import compile_plan
 from metricforge.spec import load_plan
-from tests.hostile_env import Env, assert_harmless, assert_rejected, setup_env, snapshot, toml_str
+from tests.hostile_env import (
+    CANARY,
+    Env,
+    assert_harmless,
+    assert_rejected,
+    setup_env,
+    snapshot,
+    toml_str,
+)
 
 
 @pytest.fixture
@@ -119,6 +127,47 @@ def test_hostile_value_is_refused(env: Env, text: str, needle: str) -> None:
     before = snapshot(env.root)
     result = env.run()
     assert_rejected(env, result, ["hostile.toml", "metric.hostile.value", needle], before)
+
+
+# Checked expressions that can still fail on a value of the data while the query runs.
+FAILING_CASES = [
+    ("cast_of_a_string", "value", "CAST(session_id AS DOUBLE)", "Could not convert string"),
+    ("remainder_by_zero", "value", "CAST(value AS BIGINT) % 0", "Division by zero"),
+    ("cast_overflow", "value", "CAST(value * 1e18 AS BIGINT)", "out of range"),
+    ("cast_in_where", "where", "CAST(session_id AS BIGINT) > 0", "Could not convert string"),
+]
+
+
+@pytest.mark.parametrize(
+    ("key", "text", "needle"), [c[1:] for c in FAILING_CASES], ids=[c[0] for c in FAILING_CASES]
+)
+def test_an_expression_failing_on_the_data_is_named(
+    env: Env, key: str, text: str, needle: str
+) -> None:
+    """One line naming the definition file and the expression's key, without the data value
+    that failed (the session ids hold unit ids) or advice that no definition can follow."""
+    body = '[metric.hostile]\nkind = "sum"\nevent = "purchase"\n'
+    if key == "value":
+        body += f"value = {toml_str(text)}\n"
+    else:
+        body += f'value = "value"\nwhere = {toml_str(text)}\n'
+    env.define(body)
+    before = snapshot(env.root)
+    result = env.run()
+    assert result.exit_code == 2, result.output
+    message = result.stderr.strip()
+    assert len(message.splitlines()) == 1 and message.startswith("error: "), message
+    for part in ("hostile.toml:", f"metric.hostile.{key}", "fails on a value of the data", needle):
+        assert part in message, message
+    assert "u000" not in message and "TRY(" not in message and "SET " not in message
+    assert CANARY not in result.output
+    # nothing written: the engine's private temporary folder came and went (only the
+    # modification time of the process's temporary folder differs)
+    assert not list((env.root / "systmp").iterdir())
+    after = snapshot(env.root)
+    assert {k: v for k, v in after.items() if k != "systmp"} == {
+        k: v for k, v in before.items() if k != "systmp"
+    }
 
 
 def _literals(env: Env) -> list[str]:

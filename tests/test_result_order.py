@@ -9,6 +9,7 @@ bit for bit, and must not depend on the number of threads.
 from __future__ import annotations
 
 import dataclasses
+from pathlib import Path
 
 import duckdb
 import numpy as np
@@ -106,7 +107,7 @@ def test_moments_do_not_depend_on_threads(demo: Demo) -> None:
     assert demo[2][1].equals(demo[2][2])
 
 
-def test_one_thread_reading_in_order_matches_ordered_aggregates_at_scale() -> None:
+def test_one_thread_reading_in_order_matches_ordered_aggregates_at_scale(tmp_path: Path) -> None:
     """Many row groups and batches (300,000 units): the mechanism itself, on skewed data."""
     rng = np.random.default_rng(8)
     n = 300_000
@@ -129,6 +130,6 @@ def test_one_thread_reading_in_order_matches_ordered_aggregates_at_scale() -> No
         .group_by("variant")
         .order_by("variant")
     )
-    con = one_thread_connection(units, memory_limit="1GB")
+    con = one_thread_connection(units, "1GB", tmp_path / "spill")
     found = con.sql(query.sql(dialect="duckdb")).to_arrow_table()
     assert found.equals(_ordered_reference(units, query))

@@ -10,19 +10,26 @@ import re
 import socket
 import subprocess
 import sys
+import threading
 import time
 from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
+import sqlglot.expressions as exp
 from typer.testing import CliRunner
 
 from metricforge.cli import app
-from metricforge.engines.choose import spark_conf
-from metricforge.engines.spark import _base_path
+from metricforge.compile.query import UNIT_TABLE, compile_plan
+from metricforge.engines.base import EngineInputs, rendered
+from metricforge.engines.choose import EngineName, open_engine, spark_conf
+from metricforge.engines.spark import SparkEngine, _base_path
+from metricforge.engines.watchdog import QueryTimeoutError
 from metricforge.errors import EngineError
+from metricforge.runner import gather_inputs
 from metricforge.spec import load_plan
 from tests.conftest import PIPELINES, SKIP_SPARK, event, exposure, write_case
+from tests.hostile_env import snapshot
 from tests.parity import assert_same_scorecard, tolerance
 
 
@@ -87,6 +94,83 @@ def test_spark_settings_are_key_value_pairs() -> None:
         spark_conf(["=8g"])
 
 
+class _EndlessSession:
+    """Stands in for a SparkSession (and its SparkContext) whose every query runs until its
+    job group is cancelled (Spark Connect: its operation tag interrupted)."""
+
+    def __init__(self) -> None:
+        self.properties: dict[str, str] = {"spark.jobGroup.id": "notebook"}
+        self.tags: list[str] = []
+        self.stopped: list[str] = []
+        self.stop = threading.Event()
+        self.catalog = self
+        self.sparkContext = self
+
+    def dropTempView(self, name: str) -> None:  # noqa: N802 - pyspark's names
+        pass
+
+    def getLocalProperty(self, key: str) -> str | None:  # noqa: N802
+        return self.properties.get(key)
+
+    def setLocalProperty(self, key: str, value: str | None) -> None:  # noqa: N802
+        if value is None:
+            self.properties.pop(key, None)
+        else:
+            self.properties[key] = value
+
+    def setJobGroup(self, group: str, description: str, interruptOnCancel: bool) -> None:  # noqa: N802, N803
+        assert interruptOnCancel  # without it, running tasks are not stopped
+        self.properties["spark.jobGroup.id"] = group
+
+    def cancelJobGroup(self, group: str) -> None:  # noqa: N802
+        assert group == self.properties["spark.jobGroup.id"]
+        self.stopped.append(group)
+        self.stop.set()
+
+    def addTag(self, tag: str) -> None:  # noqa: N802
+        self.tags.append(tag)
+
+    def removeTag(self, tag: str) -> None:  # noqa: N802
+        self.tags.remove(tag)
+
+    def interruptTag(self, tag: str) -> list[str]:  # noqa: N802
+        assert tag in self.tags
+        self.stopped.append(tag)
+        self.stop.set()
+        return ["op-1"]
+
+    def sql(self, query: str) -> None:
+        if not self.stop.wait(60):
+            raise AssertionError("the query was never interrupted")
+        raise RuntimeError("An error occurred while calling o28.sql.")
+
+
+@pytest.mark.parametrize("master", ["local[2]", "sc://localhost:15002"])
+def test_spark_queries_are_interrupted_after_the_timeout(
+    monkeypatch: pytest.MonkeyPatch, master: str
+) -> None:
+    """The watchdog stops exactly the run's own jobs (a job group of its own; Spark Connect:
+    an operation tag), the error is the one-line timeout, and the thread's own job group is
+    restored afterwards (no Spark needed)."""
+    statements = rendered(compile_plan(load_plan(PIPELINES / "homepage_aa.toml"), "spark"), "spark")
+    engine = SparkEngine(master, timeout_s=0.2)
+    session = _EndlessSession()
+    engine._spark = session  # type: ignore[assignment]
+    monkeypatch.setattr(engine, "_register", lambda spark, inputs: None)
+    inputs = EngineInputs([], [], ("ts",), hive=False)
+    with pytest.raises(QueryTimeoutError, match="timeout of 0.2 s"):
+        engine.run_statements(statements, inputs)
+    assert session.stopped and set(session.stopped) == {session.stopped[0]}
+    assert session.stopped[0].startswith("metricforge-")
+    assert session.properties == {"spark.jobGroup.id": "notebook"} and session.tags == []
+
+
+@pytest.mark.parametrize(("given", "expected"), [(7.5, 7.5), (None, 3600.0)])
+def test_the_timeout_reaches_the_spark_engine(given: float | None, expected: float) -> None:
+    with open_engine(EngineName.spark, timeout_s=given) as engine:  # no session is started
+        assert isinstance(engine, SparkEngine) and engine.timeout_s == expected
+
+
 def test_hive_folders_are_read_from_the_folder_above_the_partitions(tmp_path: Path) -> None:
     files = [tmp_path / "ev" / f"date=2026-09-0{d}" / "part-0.parquet" for d in (1, 2)]
     assert _base_path(files) == str((tmp_path / "ev").resolve())
@@ -115,6 +199,47 @@ def test_run_on_local_spark_writes_the_duckdb_scorecard(
     want, got = _scorecard(tmp_path / "duck"), _scorecard(tmp_path / "spark")
     assert got["stamp"]["engine"] == "spark"  # type: ignore[index]
     assert_same_scorecard(got["metrics"], want["metrics"], tolerance("spark"))  # type: ignore[arg-type]
+
+
+@pytest.mark.spark
+@pytest.mark.slow
+def test_a_spark_run_past_its_timeout_fails_in_one_line_and_writes_nothing(
+    cli: CliRunner, tmp_path: Path, spark_engine: object
+) -> None:
+    spec = _small_case(tmp_path)
+    before = snapshot(tmp_path)
+    args = ["--out", str(tmp_path / "o"), "--engine", "spark", "--timeout", "0.001"]
+    result = cli.invoke(app, ["run", str(spec), *args])
+    assert result.exit_code == 2, result.output
+    message = result.stderr.strip()
+    assert len(message.splitlines()) == 1 and "timeout of 0.001 s" in message, message
+    assert snapshot(tmp_path) == before
+    # the session is left usable: the next run on it completes
+    assert _run(cli, str(spec), "--out", str(tmp_path / "o"), "--engine", "spark")[0] == 0
+
+
+@pytest.mark.spark
+@pytest.mark.slow
+def test_a_runaway_spark_query_is_interrupted(
+    tmp_path: Path, spark_engine: SparkEngine, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A result query that could not end in days (unit_rows crossed with itself eight
+    times: 40**8 rows) is stopped by the timeout; the session stays usable."""
+    plan = load_plan(_small_case(tmp_path))
+    inputs, _ = gather_inputs(plan)
+    compiled = compile_plan(plan, "spark")
+    runaway = exp.select(exp.Count(this=exp.Star())).from_(
+        exp.alias_(exp.to_table(UNIT_TABLE), "a", table=True)
+    )
+    for alias in "bcdefgh":
+        runaway = runaway.join(
+            exp.alias_(exp.to_table(UNIT_TABLE), alias, table=True), join_type="cross"
+        )
+    monkeypatch.setattr(spark_engine, "timeout_s", 3.0)
+    with pytest.raises(QueryTimeoutError, match="timeout of 3 s"):
+        spark_engine.run(dataclasses.replace(compiled, results=(("runaway", runaway),)), inputs)
+    monkeypatch.setattr(spark_engine, "timeout_s", None)
+    assert spark_engine.run(compiled, inputs)["moments"].num_rows > 0
 
 
 def _free_port() -> int:

@@ -39,6 +39,7 @@ from metricforge.compile.checks import (
     replayable,
 )
 from metricforge.compile.query import CompiledRun, compile_unit_rows
+from metricforge.data_errors import run_naming_failures
 from metricforge.engines.base import Engine
 from metricforge.errors import StatsError
 from metricforge.report.inference import hypothesis
@@ -263,7 +264,8 @@ def run_aa(
     """Scan once, reduce to bucket moments, replay: the ``metricforge aa`` command."""
     scan_plan = replay_plan(plan, period)
     inputs, _ = gather_inputs(scan_plan)
-    table = engine.run(compiled_replay(scan_plan, period, engine.dialect), inputs)["buckets"]
+    compiled = compiled_replay(scan_plan, period, engine.dialect)
+    table = run_naming_failures(scan_plan, engine, compiled, inputs)["buckets"]
     if table.num_rows == 0:
         raise StatsError(f"experiment '{plan.spec.name}' has no analysed units to replay")
     buckets, units = bucket_arrays(plan, table, period)

@@ -43,18 +43,21 @@ def open_engine(
 ) -> Iterator[Engine]:
     """The engine for a command; a Spark session is stopped when the command ends.
 
-    ``memory_limit``, ``timeout_s`` and ``progress`` are DuckDB's (None: its defaults);
-    Spark takes its memory from ``--spark-conf``."""
+    ``timeout_s`` stops the queries of either engine (None: the default timeout);
+    ``memory_limit`` and ``progress`` are DuckDB's (None: its defaults); Spark takes its
+    memory from ``--spark-conf``."""
+    from metricforge.engines.watchdog import DEFAULT_TIMEOUT_S
+
+    timeout = timeout_s if timeout_s is not None else DEFAULT_TIMEOUT_S
     if name is EngineName.duckdb:
         if spark_master is not None or spark_settings:
             raise EngineError("--spark-master and --spark-conf need --engine spark")
         from metricforge.engines.duckdb import DuckDBEngine
-        from metricforge.engines.watchdog import DEFAULT_TIMEOUT_S
 
         yield DuckDBEngine(
             threads=threads,
             memory_limit=memory_limit,
-            timeout_s=timeout_s if timeout_s is not None else DEFAULT_TIMEOUT_S,
+            timeout_s=timeout,
             progress=progress,
         )
         return
@@ -63,7 +66,7 @@ def open_engine(
     from metricforge.engines.spark import DEFAULT_MASTER, SparkEngine
 
     master = spark_master or (f"local[{threads}]" if threads else DEFAULT_MASTER)
-    engine = SparkEngine(master, spark_conf(spark_settings))
+    engine = SparkEngine(master, spark_conf(spark_settings), timeout_s=timeout)
     try:
         yield engine
     finally:

@@ -24,6 +24,7 @@ import pyarrow as pa
 import sqlglot.expressions as exp
 
 from metricforge.compile.query import CompiledRun
+from metricforge.data_errors import CAST, DIVISION, OVERFLOW, DataValueError
 from metricforge.engines.base import EngineInputs, arrow_result, check_statements, rendered
 from metricforge.engines.unit_order import results_in_unit_order
 from metricforge.engines.watchdog import DEFAULT_TIMEOUT_S, Watchdog
@@ -43,6 +44,17 @@ _NOT_A_FILE_PROBLEM = (
     duckdb.InterruptException,
     duckdb.OutOfMemoryException,
 )
+
+
+def _value_failure(err: duckdb.Error) -> str | None:
+    """The kind of failure on a value of the data (data_errors.py), if it is one."""
+    if isinstance(err, duckdb.ConversionException):
+        return CAST
+    if isinstance(err, duckdb.OutOfRangeException):
+        return OVERFLOW
+    if isinstance(err, duckdb.InvalidInputException) and "Division by zero" in str(err):
+        return DIVISION
+    return None
 
 
 def checked_memory_limit(text: str | None) -> str:
@@ -199,7 +211,11 @@ class DuckDBEngine:
                         with watch(con, self.progress):
                             con.execute(store)
                         tables = results_in_unit_order(
-                            con, results, memory_limit=self.memory_limit, on_open=running.append
+                            con,
+                            results,
+                            memory_limit=self.memory_limit,
+                            temp_dir=Path(tmp) / "ordered",
+                            on_open=running.append,
                         )
                         tables = {name: arrow_result(t) for name, t in tables.items()}
                     except duckdb.Error as err:
@@ -210,7 +226,11 @@ class DuckDBEngine:
                             broken = find_unreadable(inputs.events + inputs.exposures)
                         if broken is not None:
                             raise broken from None
-                        raise EngineError(f"DuckDB failed: {_first_line(err)}") from None
+                        message = f"DuckDB failed: {_first_line(err)}"
+                        kind = _value_failure(err)
+                        if kind is not None:
+                            raise DataValueError(message, kind) from None
+                        raise EngineError(message) from None
                     if dog.fired:
                         raise dog.timeout_error()
                     return tables

@@ -6,6 +6,10 @@ so that the package works without the optional extra (``pip install 'metricforge
 The engine registers the same two views as DuckDB (``events`` with only the needed columns,
 ``exposures``), runs the materialisation (``CACHE TABLE unit_rows AS ...``), then each
 result query, and returns Arrow tables typed as DuckDB's (engines/base.py: arrow_result).
+The statements run under the same timeout watchdog as DuckDB's (engines/watchdog.py): they
+run in a job group of their own (Spark Connect: under an operation tag), and once the
+deadline passes that group's jobs are cancelled with their tasks interrupted (Connect:
+``interruptTag``); other work of a shared session runs on.
 """
 
 from __future__ import annotations
@@ -15,8 +19,9 @@ import posixpath
 import re
 import shutil
 import socket
+import uuid
 import warnings
-from collections.abc import Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from contextlib import contextmanager, suppress
 from pathlib import Path, PurePosixPath
 from typing import TYPE_CHECKING, Any
@@ -26,7 +31,9 @@ import pyarrow as pa
 
 from metricforge.compile.query import CompiledRun
 from metricforge.compile.sqlparts import UNIT_TABLE
+from metricforge.data_errors import CAST, DIVISION, OVERFLOW, DataValueError
 from metricforge.engines.base import EngineInputs, arrow_result, check_statements, rendered
+from metricforge.engines.watchdog import DEFAULT_TIMEOUT_S, Watchdog
 from metricforge.errors import EngineError
 from metricforge.schema import EXPOSURE_COLUMNS
 
@@ -69,6 +76,23 @@ CONNECTOR_CLASSES: Mapping[str, str] = {
     "AzureBlobFileSystem": "abfss",
     "GoogleHadoopFileSystem": "gs",
 }
+
+
+# Spark's error classes of a failure on a value of the data (ANSI mode, Spark 4's default).
+VALUE_FAILURES: Mapping[str, str] = {
+    "CAST_INVALID_INPUT": CAST,
+    "CAST_OVERFLOW": OVERFLOW,
+    "DIVIDE_BY_ZERO": DIVISION,
+    "REMAINDER_BY_ZERO": DIVISION,
+    "ARITHMETIC_OVERFLOW": OVERFLOW,
+    "NUMERIC_VALUE_OUT_OF_RANGE": OVERFLOW,
+}
+_ERROR_CLASS = re.compile(r"\[([A-Z_]+)(\.[A-Z_]+)?\]")
+
+
+def _value_failure(message: str) -> str | None:
+    found = _ERROR_CLASS.search(message)
+    return VALUE_FAILURES.get(found.group(1)) if found else None
 
 
 def is_connect(master: str) -> bool:
@@ -181,9 +205,16 @@ class SparkEngine:
     name = "spark"
     dialect = "spark"
 
-    def __init__(self, master: str = DEFAULT_MASTER, conf: Mapping[str, str] | None = None) -> None:
+    def __init__(
+        self,
+        master: str = DEFAULT_MASTER,
+        conf: Mapping[str, str] | None = None,
+        *,
+        timeout_s: float | None = DEFAULT_TIMEOUT_S,
+    ) -> None:
         self.master = master
         self.conf = dict(conf or {})
+        self.timeout_s = timeout_s  # None: no timeout
         self._spark: SparkSession | None = None
         self._owned = False  # an already running session (a notebook's) is left running
 
@@ -292,17 +323,54 @@ class SparkEngine:
         SELECTs over it; returns each SELECT's result by name."""
         check_statements(statements, self.dialect)
         spark = self.session()
-        try:
-            self._drop(spark)
-            self._register(spark, inputs)
-            spark.sql(statements[0][1])  # CACHE TABLE ... AS is eager
-            with _quiet():
-                return {name: arrow_result(spark.sql(q).toArrow()) for name, q in statements[1:]}
-        except EngineError:
-            raise
-        except Exception as err:  # noqa: BLE001 - py4j, gRPC and Spark errors alike
-            first = _first_line(err)
-            raise EngineError(f"Spark failed: {first}{_connector_hint(str(err))}") from None
-        finally:
-            with suppress(Exception):  # a stopped session has nothing to drop
+        with self._interruptible(spark) as interrupt, Watchdog(interrupt, self.timeout_s) as dog:
+            try:
                 self._drop(spark)
+                self._register(spark, inputs)
+                spark.sql(statements[0][1])  # CACHE TABLE ... AS is eager
+                with _quiet():
+                    tables = {
+                        name: arrow_result(spark.sql(q).toArrow()) for name, q in statements[1:]
+                    }
+            except EngineError:
+                raise
+            except Exception as err:  # noqa: BLE001 - py4j, gRPC and Spark errors alike
+                if dog.fired:
+                    raise dog.timeout_error() from None
+                first = _first_line(err)
+                kind = _value_failure(first)
+                if kind is not None:
+                    raise DataValueError(f"Spark failed: {first}", kind) from None
+                hint = _connector_hint(str(err))
+                raise EngineError(f"Spark failed: {first}{hint}") from None
+            finally:
+                with suppress(Exception):  # a stopped session has nothing to drop
+                    self._drop(spark)
+            if dog.fired:
+                raise dog.timeout_error()
+            return tables
+
+    @contextmanager
+    def _interruptible(self, spark: SparkSession) -> Iterator[Callable[[], object]]:
+        """Within it, this thread's Spark work can be stopped by the function it gives: a job
+        group of its own whose cancellation interrupts the running tasks (an operation tag
+        on Spark Connect, which has no SparkContext); the thread's own group is restored."""
+        group = f"metricforge-{uuid.uuid4().hex}"
+        if is_connect(self.master):
+            spark.addTag(group)
+            try:
+                yield lambda: spark.interruptTag(group)
+            finally:
+                with suppress(Exception):
+                    spark.removeTag(group)
+            return
+        context = spark.sparkContext
+        keys = ("spark.jobGroup.id", "spark.job.description", "spark.job.interruptOnCancel")
+        before = {key: context.getLocalProperty(key) for key in keys}
+        context.setJobGroup(group, "metricforge", interruptOnCancel=True)
+        try:
+            yield lambda: context.cancelJobGroup(group)
+        finally:
+            with suppress(Exception):
+                for key, value in before.items():
+                    context.setLocalProperty(key, value)  # type: ignore[arg-type]
