@@ -9,6 +9,7 @@ interleave their lines and a failed run leaves no line.
 
 from __future__ import annotations
 
+import difflib
 import hashlib
 import json
 import os
@@ -56,7 +57,10 @@ def entry_for(out: Path, command: str, extra: dict[str, Any] | None = None) -> d
         "tool_version": stamp["tool_version"],
         "trust": card.get("trust", {}).get("verdict"),
         "decision": [
-            {k: r.get(k) for k in ("metric", "variant", "value", "rel_effect", "p_value")}
+            {
+                k: r.get(k)
+                for k in ("metric", "variant", "value", "abs_effect", "rel_effect", "p_value")
+            }
             for r in card.get("metrics", [])
             if r.get("role") == "decision"
         ],
@@ -113,6 +117,7 @@ def read_history(
         )
     entries: list[dict[str, Any]] = []
     warnings: list[str] = []
+    seen: set[str] = set()
     for number, line in _lines(path):
         try:
             entry = json.loads(line)
@@ -121,8 +126,16 @@ def read_history(
         if not isinstance(entry, dict) or not isinstance(entry.get("experiment"), str):
             warnings.append(f"{path}:{number}: not a history entry; skipped")
             continue
+        seen.add(entry["experiment"])
         if experiment is None or entry["experiment"] == experiment:
             entries.append(entry)
+    if experiment is not None and not entries and seen:
+        near = difflib.get_close_matches(experiment, sorted(seen), n=1)
+        hint = f" (did you mean '{near[0]}'?)" if near else ""
+        warnings.append(
+            f"{path}: no run of experiment '{experiment}'{hint};"
+            f" catalogued: {', '.join(sorted(seen))}"
+        )
     return entries, warnings
 
 

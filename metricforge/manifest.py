@@ -1,8 +1,9 @@
 """manifest.json: a self-contained record of one run, enough to rerun it exactly.
 
-It holds full copies of the spec, of every metric definition file and of the bot-filter
-file (with its released.toml entry), each input file's fingerprint, the options of the run,
-and the engine, library and tool versions. ``metricforge rerun`` reads nothing else.
+It holds full copies of the spec, of every metric definition file, of the bot-filter file
+(with its released.toml entry) and of the lock file the run compared with, each input
+file's fingerprint, the options of the run, and the engine, library and tool versions.
+``metricforge rerun`` reads nothing else.
 """
 
 from __future__ import annotations
@@ -17,6 +18,7 @@ from pathlib import Path
 from typing import Any
 
 from metricforge import __version__
+from metricforge.checks.lock import lock_path
 from metricforge.errors import ManifestError
 from metricforge.inputs import InputFile, label_of, with_content_hashes, within
 from metricforge.locations import Uri
@@ -24,6 +26,7 @@ from metricforge.provenance import library_versions
 from metricforge.report.scorecard import Scorecard
 from metricforge.runner import RunData
 from metricforge.spec.metrics import definition_files
+from metricforge.spec.model import Plan
 
 FORMAT = "metricforge-manifest"
 FORMAT_VERSION = 1
@@ -145,9 +148,25 @@ def build_manifest(data: RunData, card: Scorecard) -> dict[str, Any]:
         },
         "inputs": _inputs(data, str(stamp["inputs_fingerprint"])),
     }
+    if "lock_file" in extra:  # set by the lock check while the scorecard was built
+        manifest["lock"] = _lock_record(plan, extra["lock_file"])
     if "rerun_of" in extra:
         manifest["rerun_of"] = extra["rerun_of"]
     return manifest
+
+
+def _lock_record(plan: Plan, text: str | None) -> dict[str, str] | None:
+    """The lock file the run compared with, as read (None: there was none). Its place is
+    where the lock of the spec belongs, also for a rerun that read the manifest's copy."""
+    if text is None:
+        return None
+    place = lock_path(plan.spec.path)
+    return {
+        "path": label_of(place, plan.spec.path.parent),
+        "absolute": absolute(place),
+        "sha256": sha256_text(text),
+        "text": text,
+    }
 
 
 def platform_record() -> dict[str, str]:

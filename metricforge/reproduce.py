@@ -57,6 +57,11 @@ def explain(old: Manifest, new: Manifest, input_changes: list[str]) -> list[str]
     engine_b = f"{b.get('engine')} {b.get('engine_version')}"
     if engine_a != engine_b:
         reasons.append(f"engine: {engine_a} → {engine_b}")
+    if "lock" not in old.data:
+        reasons.append(
+            "lock file: the old manifest holds no copy of it (written before lock files were"
+            " copied), so the rerun compared with the lock beside the spec as it is today"
+        )
     for kind, key in (("library versions", "libraries"), ("platform", "platform")):
         found = _changes(kind, old.data.get(key) or {}, new.data.get(key) or {})
         if found:

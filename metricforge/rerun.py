@@ -1,8 +1,8 @@
 """Rerunning a run from its manifest alone.
 
-The manifest's copies of the spec, the definitions and the bot filter are written to a
-private temporary folder and the plan is loaded from there (never from today's library);
-the inputs are found through the spec's paths from the spec's recorded folder and checked
+The manifest's copies of the spec, the definitions, the bot filter and the lock file are
+written to a private temporary folder and the plan is loaded from there (never from today's
+library); the inputs are found through the spec's paths from the spec's recorded folder and checked
 against the recorded fingerprints before anything runs.
 """
 
@@ -15,6 +15,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
 
+from metricforge.checks.lock import lock_path
 from metricforge.engines.base import Engine
 from metricforge.errors import InputDataError, ManifestError, OutputError, SpecError
 from metricforge.inputs import content_sha256, inspect, label_of
@@ -144,12 +145,31 @@ def plan_from_manifest(man: Manifest, work: Path, spec_folder: Path | None = Non
         raise ManifestError(
             f"its copies do not load with this tool version: {message}", file=str(man.path)
         ) from None
-    plan = dataclasses.replace(plan, pre_period_days=man.get("options", "pre_period_days"))
+    plan = dataclasses.replace(
+        plan,
+        pre_period_days=man.get("options", "pre_period_days"),
+        lock_file=_lock_copy(man, spec_file),
+    )
     if definitions_sha256(plan) != man.get("definitions", "sha256"):
         raise man.error(
             "the definition copies do not give the recorded definitions hash", "definitions"
         )
     return plan
+
+
+def _lock_copy(man: Manifest, spec_file: Path) -> Path | None:
+    """The manifest's copy of the lock file, written beside the spec's copy (left absent when
+    the run had no lock); None for a manifest without the ``lock`` key (written before lock
+    files were copied), whose rerun reads the lock beside the spec as it is today."""
+    if "lock" not in man.data:
+        return None
+    record, place = man.data["lock"], lock_path(spec_file)
+    if record is None:
+        return place
+    if not (isinstance(record, dict) and isinstance(record.get("text"), str)):
+        raise man.error("expected null or a table with 'text'", "lock")
+    _check_copy(man, record["text"], record.get("sha256"), "lock", "text")
+    return _materialise(place, record["text"])
 
 
 def verify_inputs(

@@ -200,3 +200,36 @@ def test_unknown_filter_version_is_refused(tmp_path: Path) -> None:
     assert result.exit_code == 2
     assert "'bots@3' is not released" in result.output and "did you mean" in result.output
     assert list(tmp_path.iterdir()) == []
+
+
+def test_cuped_and_winsorise_columns_are_compared(demo: Path, tmp_path: Path) -> None:
+    """checkout_layout adjusts by CUPED and caps revenue_winsorised: both columns compared."""
+    result = invoke("compare", demo / "v1", demo / "v2", "--force", "--out", tmp_path / "cmp")
+    assert result.exit_code == 0, result.output
+    data = json.loads((tmp_path / "cmp" / "comparison.json").read_text())
+    assert {"variance_reduction", "cap", "p_value_adjusted"} <= set(data["columns"])
+    capped = next(r for r in data["rows"] if r["metric"] == "revenue_winsorised")
+    assert capped["cap_a"] > 0 and capped["cap_b"] > 0
+    assert capped["cap_change"] == pytest.approx(capped["cap_b"] - capped["cap_a"])
+    adjusted = [r for r in data["rows"] if str(r["method_a"]).endswith("+cuped")]
+    assert len(adjusted) == len(data["rows"]) - 1  # all but the quantile, page_latency_p95
+    for row in adjusted:
+        assert 0 < row["variance_reduction_a"] < 1 and 0 < row["variance_reduction_b"] < 1
+        assert row["variance_reduction_change"] == pytest.approx(
+            row["variance_reduction_b"] - row["variance_reduction_a"]
+        )
+
+
+def test_long_variant_names_are_shown_whole(demo: Path, tmp_path: Path) -> None:
+    """Factorial contrasts share a prefix (main:…, interaction:…): never cut in the table."""
+    long = "interaction:wide_photo*price_badge_and_more"
+    for name in ("a", "b"):
+        shutil.copytree(demo / "v2", tmp_path / name)
+        path = tmp_path / name / "scorecard.parquet"
+        table = pq.read_table(path)
+        names = [long if v == "treatment" else v for v in table["variant"].to_pylist()]
+        index = table.schema.get_field_index("variant")
+        pq.write_table(table.set_column(index, "variant", pa.array(names)), path)
+    result = invoke("compare", tmp_path / "a", tmp_path / "b")
+    assert result.exit_code == 0, result.output
+    assert result.output.count(long) == pq.read_table(path).num_rows

@@ -58,8 +58,12 @@ def test_history_command_lists_and_filters(case: Path, tmp_path: Path) -> None:
     assert invoke("run", case, "--out", root / "a").exit_code == 0
     listed = invoke("history", root)
     assert listed.exit_code == 0 and "case" in listed.output and "1 run(s)" in listed.output
+    assert "revenue: treatment" in listed.output  # the decision per variant, named
     other = invoke("history", root, "--experiment", "checkout_layout")
     assert other.exit_code == 0 and "0 run(s)" in other.output
+    assert "no run of experiment 'checkout_layout'" in other.output
+    typo = invoke("history", root, "--experiment", "cas")
+    assert "(did you mean 'case'?)" in typo.output and "catalogued: case" in typo.output
     assert invoke("history", tmp_path / "nowhere").exit_code == 2
 
 

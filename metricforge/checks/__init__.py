@@ -18,7 +18,7 @@ from metricforge.runner import RunData
 
 def trust_section(data: RunData) -> dict[str, Any]:
     checks = [
-        lock_check(data.plan),
+        lock_check(data.plan, data.provenance),
         sample_ratio(data),
         sample_ratio_by_day(data),
         bot_share(data),

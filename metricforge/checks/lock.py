@@ -96,13 +96,32 @@ def write_lock(plan: Plan, now: dt.datetime, *, force: bool = False) -> Path:
     return path
 
 
+def lock_source(plan: Plan) -> Path:
+    """Where a run reads its lock: beside the spec, or a rerun's copy from its manifest."""
+    return plan.lock_file if plan.lock_file is not None else lock_path(plan.spec.path)
+
+
+def read_lock_text(path: Path) -> str | None:
+    """The lock file's text, None when there is none."""
+    try:
+        return path.read_bytes().decode("utf-8")
+    except FileNotFoundError:
+        return None
+    except (OSError, UnicodeDecodeError) as err:
+        raise SpecError(f"unreadable lock file: {err}", file=str(path)) from None
+
+
 def read_lock(path: Path) -> dict[str, Any] | None:
     """The lock at ``path``, None when there is none; a malformed one is bad input."""
-    if not path.exists():
-        return None
+    text = read_lock_text(path)
+    return None if text is None else parse_lock(text, path)
+
+
+def parse_lock(text: str, path: Path) -> dict[str, Any]:
+    """A lock file's content, checked; ``path`` names it in errors."""
     try:
-        data = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as err:
+        data = json.loads(text)
+    except json.JSONDecodeError as err:
         raise SpecError(f"unreadable lock file: {err}", file=str(path)) from None
     missing = [k for k in _KEYS if not isinstance(data, dict) or k not in data]
     if missing:
@@ -184,10 +203,15 @@ def changes(plan: Plan, lock: dict[str, Any]) -> list[str]:
     return out + _analysis_changes(spec, lock)
 
 
-def lock_check(plan: Plan) -> dict[str, Any]:
+def lock_check(plan: Plan, seen: dict[str, Any] | None = None) -> dict[str, Any]:
+    """The ``decision_locked`` check. ``seen`` (a run's provenance) receives the lock file
+    exactly as read, under ``lock_file`` (None: there was none), for the manifest's copy."""
     spec = plan.spec
-    path = lock_path(spec.path)
-    lock = read_lock(path)
+    path = lock_source(plan)
+    text = read_lock_text(path)
+    lock = None if text is None else parse_lock(text, path)
+    if seen is not None:
+        seen["lock_file"] = text
     start = _stamp(_utc(spec.start))
     if lock is None:
         return check(

@@ -68,10 +68,11 @@ def render_comparison(c: Comparison, console: Console) -> None:
             *(_pair(v, k, "count") for k in ("units", "bot_units", "events")),
         )
     console.print(counts)
-    table = Table("variant")
-    table.add_column("metric", no_wrap=True)
-    for col in ("value", "abs effect", "rel effect", "p"):
-        table.add_column(col, justify="right", no_wrap=True)
+    table = Table()
+    for col in ("variant", "metric"):  # whole names: contrast names share a prefix
+        table.add_column(col, no_wrap=True)
+    for col in ("value", "abs effect", "rel effect", "p"):  # wrap at "→" and "(" if narrow
+        table.add_column(col, justify="right", overflow="fold")
     for row in c.rows:
         table.add_row(
             escape(row["variant"]),
@@ -114,17 +115,25 @@ def render_rerun(
 _REPRODUCED = {True: " (identical)", False: " (differs)", None: " (unconfirmed)"}
 
 
+def _decision(rows: list[dict[str, Any]]) -> str:
+    """``metric: variant effect p=…; …``: the relative effect, or the absolute one where a
+    row has none (a factorial contrast)."""
+    parts = []
+    for d in rows:
+        rel = d.get("rel_effect")
+        effect = _pct(rel) if rel is not None else f"abs {_num(d.get('abs_effect'), 3)}"
+        parts.append(f"{d.get('variant')} {effect} p={_num(d.get('p_value'), 3)}")
+    metrics = sorted({str(d.get("metric")) for d in rows})
+    return escape(f"{', '.join(metrics)}: " * bool(rows) + "; ".join(parts))
+
+
 def render_history(entries: list[dict[str, Any]], console: Console) -> None:
     """One line per run; ``out`` is the result folder's name inside the output root."""
     table = Table("run at (UTC)", "experiment", "command", "filter", "definitions", "inputs")
     for col in ("tool", "trust", "decision", "out"):
         table.add_column(col, no_wrap=col == "out")
     for e in entries:
-        decision = "; ".join(
-            f"{d.get('metric')} {_pct(d.get('rel_effect'))} p={_num(d.get('p_value'), 3)}"
-            for d in e.get("decision", [])
-            if isinstance(d, dict)
-        )
+        decision = _decision([d for d in e.get("decision", []) if isinstance(d, dict)])
         command = str(e.get("command"))
         if command == "rerun":
             command += _REPRODUCED.get(e.get("reproduced"), "")

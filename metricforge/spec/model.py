@@ -191,6 +191,9 @@ class Plan:
     # values over the earlier and the later half of the pre-period (`xpre1_`, `ypre1_`,
     # `xpre2_`, `ypre2_`).
     history_split: bool = False
+    # The lock file the run compares with (None: `<spec stem>.lock.json` beside the spec).
+    # A rerun points it at the manifest's copy, so today's lock file is never read.
+    lock_file: Path | None = None
 
     def metric(self, name: str) -> MetricDef:
         for m in self.metrics:
