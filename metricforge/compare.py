@@ -20,7 +20,7 @@ import pyarrow.parquet as pq
 from metricforge.errors import ManifestError
 from metricforge.manifest import MANIFEST_NAME
 from metricforge.provenance import Stamp
-from metricforge.report.files import dump_json, parquet_bytes, write_folder
+from metricforge.report.files import SEGMENTS_FILE, dump_json, parquet_bytes, write_folder
 
 SCORECARD = "scorecard.parquet"
 SCORECARD_JSON = "scorecard.json"
@@ -201,11 +201,18 @@ _NOTES = (
 def notes(a: ResultFolder, b: ResultFolder) -> list[str]:
     """Stamp differences that do not make the pair incomparable but are worth knowing."""
     sa, sb = a.stamp, b.stamp
-    return [
+    found = [
         f"{what}: A {_short(sa.get(key))}, B {_short(sb.get(key))}"
         for key, what in _NOTES
         if sa.get(key) != sb.get(key)
     ]
+    with_segments = [side for side, r in (("A", a), ("B", b)) if "segments" in r.card]
+    if with_segments:  # [segments] breakdowns are exploratory: not matched here
+        found.append(
+            f"segment breakdowns ({' and '.join(with_segments)}) are not compared;"
+            f" see each folder's {SEGMENTS_FILE}"
+        )
+    return found
 
 
 @dataclass(frozen=True)
