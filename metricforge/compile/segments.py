@@ -1,9 +1,10 @@
 """Segment columns of the one scan (``[segments] by``) and the names of their results.
 
 A unit's segment value for a column is the column's value on the unit's earliest event in
-its analysis window (from its first exposure on) that carries a non-NULL value; events at
-the same instant are decided by the smallest value. The scan computes it without a second
-pass: every such event makes the key ``LPAD(epoch microseconds, 20, '0') || value``, whose
+its analysis window (from its first exposure on) that carries a non-NULL value; events in
+the same millisecond are decided by the smallest value. The scan computes it without a
+second pass: every such event makes the key ``LPAD(epoch milliseconds, 20, '0') || value``
+(UnixMillis: a function every engine, and the golden files' parser, knows), whose
 minimum over the unit's sessions (and, with stitching, over an account's cookies) is its
 earliest value, ties broken by the smallest value. ``unit_rows`` carries the value as
 ``seg_<column>`` (NULL for a unit without any value).
@@ -19,7 +20,7 @@ import sqlglot.expressions as exp
 from metricforge.compile.sqlparts import all_of, case, col, lit
 from metricforge.spec.model import Plan
 
-_DIGITS = 20  # epoch microseconds of any year up to 9000 fit in 20 digits
+_DIGITS = 20  # epoch milliseconds of any year up to 9000 fit in 20 digits
 
 
 def segment_columns(plan: Plan) -> tuple[str, ...]:
@@ -45,8 +46,8 @@ def session_keys(plan: Plan, e: str, in_window: exp.Expr | None) -> list[exp.Exp
     out: list[exp.Expr] = []
     for column in segment_columns(plan):
         value = col(column, e)
-        micros = exp.cast(exp.UnixMicros(this=col("ts", e)), "VARCHAR")
-        padded = exp.Pad(this=micros, expression=lit(_DIGITS), fill_pattern=lit("0"), is_left=True)
+        millis = exp.cast(exp.UnixMillis(this=col("ts", e)), "VARCHAR")
+        padded = exp.Pad(this=millis, expression=lit(_DIGITS), fill_pattern=lit("0"), is_left=True)
         key = exp.Concat(expressions=[padded, value.copy()])
         usable = all_of(
             in_window.copy() if in_window is not None else None, value.is_(exp.null()).not_()
