@@ -24,7 +24,7 @@ from metricforge.cli import app
 from metricforge.stats.cells import plan_cells
 from metricforge.stats.moments import Moments, merge_moments
 from tests.conftest import PIPELINES, SAMPLE, event, exposure, write_case
-from tests.test_demo_independent import END, SESSION_LIMIT, START, UA_TOKENS, WINDOW
+from tests.test_demo_independent import analysed
 
 DEMO = PIPELINES / "checkout_layout.toml"
 MIN_UNITS = 500  # pipelines/checkout_layout.toml [segments] min_units
@@ -48,29 +48,7 @@ def units() -> pl.DataFrame:
     the value on its earliest event in its window that has one (to the millisecond, ties:
     the smallest value), computed here from the raw logs with polars alone."""
     events = pl.read_parquet(SAMPLE / "events" / "**" / "*.parquet", hive_partitioning=False)
-    exp = (
-        pl.read_parquet(SAMPLE / "exposures.parquet")
-        .filter(
-            (pl.col("experiment") == "checkout_layout")
-            & (pl.col("ts") >= START)
-            & (pl.col("ts") < END)
-        )
-        .group_by("unit_id")
-        .agg(
-            pl.col("ts").min().alias("first_ts"),
-            pl.col("variant").min(),
-            pl.col("variant").n_unique().alias("n_var"),
-        )
-    )
-    joined = events.join(exp, left_on="cookie_id", right_on="unit_id").filter(
-        (pl.col("ts") >= pl.col("first_ts")) & (pl.col("ts") < pl.col("first_ts") + WINDOW)
-    )
-    ua = pl.col("user_agent").str.to_lowercase()
-    ua_bot = joined.filter(pl.any_horizontal([ua.str.contains(t, literal=True) for t in UA_TOKENS]))
-    big = joined.group_by("cookie_id", "session_id").len().filter(pl.col("len") > SESSION_LIMIT)
-    bots = set(ua_bot["cookie_id"]) | set(big["cookie_id"])
-    kept = exp.filter((pl.col("n_var") == 1) & ~pl.col("unit_id").is_in(list(bots)))
-    ev = joined.filter(pl.col("cookie_id").is_in(kept["unit_id"].implode()))
+    kept, ev = analysed(events, "checkout_layout")
     ms = pl.col("ts").dt.epoch("ms")
     table = kept.select("unit_id", "variant")
     for column in ("device", "country"):

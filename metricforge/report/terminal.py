@@ -142,6 +142,6 @@ def render_segments(section: dict[str, Any], experiment: str, console: Console) 
     notes = "; ".join(_column_note(c) for c in section["columns"])
     console.print(
         f"segments: min {section['min_units']} units per cell; {notes};"
-        f" {section['adjustment']}; every metric in {section['file']}",
+        f" {section['adjustment']}; all rows in {section['file']}",
         markup=False,
     )
