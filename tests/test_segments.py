@@ -346,3 +346,28 @@ def test_segment_column_missing_from_the_events_is_one_line(tmp_path: Path) -> N
     assert len(result.output.strip().splitlines()) == 1
     assert "lacks column 'country'" in result.output
     assert not (tmp_path / "out").exists()
+
+
+def test_metric_on_too_few_units_of_a_cell_is_withheld(tmp_path: Path) -> None:
+    """page_latency (a mean of page loads) exists for 5 of each cell's 30 units: below
+    min_units, so its rows carry no figures and no counts; revenue's rows are complete."""
+    events, exposures = [], []
+    for variant in ("control", "treatment"):
+        for i in range(30):
+            unit = f"u-{variant}-{i}"
+            exposures.append(exposure(unit, variant))
+            events.append(event(unit, "purchase", value=1.0 + i % 5))
+            if i < 5:
+                events.append(event(unit, "page_load", minutes=2.0, latency_ms=100.0 + i))
+    spec = write_case(tmp_path, events, exposures, diagnostics=("page_latency",))
+    spec.write_text(spec.read_text() + '\n[segments]\nby = ["device"]\nmin_units = 20\n')
+    result = invoke("run", spec, "--out", tmp_path / "out", "--threads", "1")
+    assert result.exit_code == 0, result.output
+    rows = {r["metric"]: r for r in segment_rows(tmp_path / "out")}
+    latency = rows["page_latency"]
+    assert latency["method"].startswith("withheld")
+    assert latency["n_units"] is None and latency["n_units_control"] is None
+    assert all(latency[f] is None or math.isnan(latency[f]) for f in ("value", "p_value"))
+    assert rows["revenue"]["n_units"] == 30 and rows["revenue"]["method"] == "welch"
+    section = json.loads((tmp_path / "out" / "scorecard.json").read_text())["segments"]
+    assert section["withheld_metric_rows"] == 1
