@@ -125,7 +125,8 @@ def run(
         card = build(data)
         write_outputs(out, data, card)
         render(card, out_console)
-        out_console.print(f"wrote {out}/scorecard.parquet, scorecard.json, manifest.json")
+        extra = ", segments.parquet" if card.segments is not None else ""
+        out_console.print(f"wrote {out}/scorecard.parquet, scorecard.json, manifest.json{extra}")
         out_console.print(history.record(out, "run"), markup=False)
         return bool(card.trust["verdict"] == "pass")
 

@@ -20,7 +20,7 @@ import pyarrow.parquet as pq
 from metricforge.errors import ManifestError
 from metricforge.manifest import MANIFEST_NAME
 from metricforge.provenance import Stamp
-from metricforge.report.files import dump_json, parquet_bytes, write_folder
+from metricforge.report.files import SEGMENTS_FILE, dump_json, parquet_bytes, write_folder
 
 SCORECARD = "scorecard.parquet"
 SCORECARD_JSON = "scorecard.json"
@@ -208,6 +208,17 @@ def notes(a: ResultFolder, b: ResultFolder) -> list[str]:
     ]
 
 
+def not_compared(a: ResultFolder, b: ResultFolder) -> str | None:
+    """What the comparison leaves out: segment breakdowns ([segments]) are not matched."""
+    with_segments = [side for side, r in (("A", a), ("B", b)) if "segments" in r.card]
+    if not with_segments:
+        return None
+    return (
+        f"segment breakdowns ({' and '.join(with_segments)}) are not compared;"
+        f" see each folder's {SEGMENTS_FILE}"
+    )
+
+
 @dataclass(frozen=True)
 class Comparison:
     a: ResultFolder
@@ -217,6 +228,7 @@ class Comparison:
     variants: list[dict[str, Any]]
     reasons: list[str]  # why not comparable
     notes: list[str]
+    left_out: str | None = None  # what is not compared (segment breakdowns), if anything
 
     @property
     def comparable(self) -> bool:
@@ -241,7 +253,9 @@ def _variants(a: ResultFolder, b: ResultFolder) -> list[dict[str, Any]]:
 def compare_results(a_folder: Path, b_folder: Path) -> Comparison:
     a, b = read_result(a_folder), read_result(b_folder)
     columns, rows = match_rows(a, b)
-    return Comparison(a, b, columns, rows, _variants(a, b), comparability(a, b), notes(a, b))
+    return Comparison(
+        a, b, columns, rows, _variants(a, b), comparability(a, b), notes(a, b), not_compared(a, b)
+    )
 
 
 def comparison_table(c: Comparison) -> pa.Table:
@@ -275,6 +289,7 @@ def comparison_json(c: Comparison, *, forced: bool) -> dict[str, Any]:
             "not_comparable_because": c.reasons,
             "forced": forced,
             "also_differs": c.notes,
+            **({"not_compared": c.left_out} if c.left_out is not None else {}),
             "a": side(c.a),
             "b": side(c.b),
             "key": list(KEY),

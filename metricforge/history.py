@@ -22,6 +22,7 @@ from metricforge.errors import ManifestError
 HISTORY_NAME = "metricforge-history.jsonl"
 HISTORY_FORMAT = 1
 _OUTPUTS = ("scorecard.parquet", "scorecard.json", "manifest.json")
+_SEGMENTS = "segments.parquet"  # only in results of a spec with [segments]
 
 try:  # POSIX only; O_APPEND alone already keeps one small write in one piece
     import fcntl
@@ -66,7 +67,11 @@ def entry_for(out: Path, command: str, extra: dict[str, Any] | None = None) -> d
         ],
         "out": out.name,
         "out_absolute": Path(os.path.abspath(out)).as_posix(),
-        "sha256": {name: _sha256(out / name) for name in _OUTPUTS},
+        "sha256": {
+            name: _sha256(out / name)
+            for name in (*_OUTPUTS, _SEGMENTS)
+            if name != _SEGMENTS or (out / name).is_file()
+        },
     }
     entry.update(extra or {})
     return entry

@@ -15,6 +15,7 @@ from metricforge.compare import (
 )
 from metricforge.errors import ManifestError
 from metricforge.manifest import MANIFEST_NAME, Manifest, read_manifest
+from metricforge.report.files import SEGMENTS_FILE
 
 BUG = (
     "same inputs and versions yet different numbers: this is a bug in metricforge;"
@@ -73,9 +74,15 @@ def judge(old: Manifest, out: Path, input_changes: list[str]) -> Verdict:
     """Compare the new result in ``out`` with the scorecard next to the old manifest."""
     old_dir = old.path.parent
     files: dict[str, bool | None] = {}
-    for name in (SCORECARD, SCORECARD_JSON):
-        before = old_dir / name
-        files[name] = before.read_bytes() == (out / name).read_bytes() if before.is_file() else None
+    names = [SCORECARD, SCORECARD_JSON]
+    if (old_dir / SEGMENTS_FILE).is_file() or (out / SEGMENTS_FILE).is_file():
+        names.append(SEGMENTS_FILE)  # [segments]: the breakdown must reproduce too
+    for name in names:
+        before, after = old_dir / name, out / name
+        if not before.is_file():
+            files[name] = None
+        else:
+            files[name] = after.is_file() and before.read_bytes() == after.read_bytes()
     if all(files.values()):
         return Verdict(True, files, [], [])
     reasons = explain(old, read_manifest(out / MANIFEST_NAME), input_changes)

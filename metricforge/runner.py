@@ -76,6 +76,8 @@ def needed_event_columns(plan: Plan) -> tuple[str, ...]:
         for tree in (metric.where, metric.value):
             if tree is not None:
                 cols |= columns_of(tree)
+    if plan.spec.segments is not None:
+        cols |= set(plan.spec.segments.by)
     for rule in plan.bot_filter.rules:
         if rule.kind is RuleKind.USER_AGENT:
             cols.add("user_agent")
@@ -245,11 +247,12 @@ def reshape(plan: Plan, stamp: Stamp, files: list[InputFile], table: pa.Table) -
         clean[variant] = ok[0]
     data = RunData(plan=plan, stamp=stamp, inputs=files, counts=counts)
     for name, _role in plan.reported:
-        data.moments[name] = {v: _moments(plan.metric(name), r) for v, r in clean.items()}
+        data.moments[name] = {v: row_moments(plan.metric(name), r) for v, r in clean.items()}
     return data
 
 
-def _moments(metric: MetricDef, row: dict[str, object]) -> Moments:
+def row_moments(metric: MetricDef, row: dict[str, object]) -> Moments:
+    """A metric's Moments from a row of the moments query (or a segment query)."""
     cols = result_columns(metric)
     n = int(row[cols.n] or 0)  # type: ignore[call-overload]
     if cols.successes is not None:

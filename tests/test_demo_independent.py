@@ -32,8 +32,8 @@ def events() -> pl.DataFrame:
     return pl.read_parquet(SAMPLE / "events" / "**" / "*.parquet", hive_partitioning=False)
 
 
-def reference(events: pl.DataFrame, experiment: str) -> dict[str, dict[str, tuple[float, int]]]:
-    """metric -> variant -> (value, n units)."""
+def analysed(events: pl.DataFrame, experiment: str) -> tuple[pl.DataFrame, pl.DataFrame]:
+    """(analysed units with variant and first exposure, their events in their windows)."""
     exp = (
         pl.read_parquet(SAMPLE / "exposures.parquet")
         .filter(
@@ -54,7 +54,12 @@ def reference(events: pl.DataFrame, experiment: str) -> dict[str, dict[str, tupl
     big = joined.group_by("cookie_id", "session_id").len().filter(pl.col("len") > SESSION_LIMIT)
     bots = set(ua_bot["cookie_id"]) | set(big["cookie_id"])
     units = exp.filter((pl.col("n_var") == 1) & ~pl.col("unit_id").is_in(list(bots)))
-    ev = joined.filter(pl.col("cookie_id").is_in(units["unit_id"].implode()))
+    return units, joined.filter(pl.col("cookie_id").is_in(units["unit_id"].implode()))
+
+
+def reference(events: pl.DataFrame, experiment: str) -> dict[str, dict[str, tuple[float, int]]]:
+    """metric -> variant -> (value, n units)."""
+    units, ev = analysed(events, experiment)
 
     def per_unit(expr: pl.Expr, name: str, frame: pl.DataFrame = ev) -> pl.DataFrame:
         agg = frame.group_by("cookie_id").agg(expr.alias(name))

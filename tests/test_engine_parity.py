@@ -117,6 +117,9 @@ def test_demo_pipeline_gives_the_reference_numbers(engine: Engine, pipeline: Pat
     assert_same_scorecard(card.rows, want.rows, rel)  # effects, intervals, p-values
     assert_same_rows(card.variants, want.variants, rel)  # units, bots, events per variant
     assert_same_rows(card.trust["checks"], want.trust["checks"], rel)
+    if want.segments is not None:  # [segments]: the breakdown rows too
+        assert card.segments is not None
+        assert_same_rows(card.segments.rows, want.segments.rows, rel)
     assert card.stamp["engine"] == engine.name
 
 

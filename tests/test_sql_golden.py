@@ -50,6 +50,8 @@ def test_one_scan_one_unit_grouping() -> None:
         "caps",
         "cuped",
         "quantile_page_latency_p95",
+        "segments_device",
+        "segments_country",
     ]
     for name, query in run.results:
         assert isinstance(query, exp.Select), name

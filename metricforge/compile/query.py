@@ -38,12 +38,20 @@ from metricforge.compile.quality import (
     data_quality_query,
     unit_columns,
 )
+from metricforge.compile.segments import (
+    merged_keys,
+    result_name,
+    segment_columns,
+    unit_values,
+    value_column,
+)
 from metricforge.compile.sessions import periods, sessions
 from metricforge.compile.sqlparts import (
     BIGINT,
     DOUBLE,
     UNIT_TABLE,
     aggregate,
+    analysed,
     sorted_concat,
     timestamp,
     with_ctes,
@@ -195,6 +203,7 @@ class _Builder:
                 )
         for column in unit_columns(self.plan):
             select = select.select(exp.alias_(exp.cast(exp.Sum(this=_col(column)), BIGINT), column))
+        select = select.select(*merged_keys(self.plan))
         for metric in self.plan.metrics:
             select = select.select(*self._unit_parts(metric, "", "n_events" if pre else None))
             for period in earlier:
@@ -302,6 +311,7 @@ class _Builder:
             _col("first_ts"),
             _col(DUPLICATE_EXPOSURES),
             *[_col(column) for column in unit_columns(self.plan)],
+            *unit_values(self.plan),
         )
         if stitched:
             select = select.select(_col("identity"), _col("n_cookies"))
@@ -334,11 +344,14 @@ class _Builder:
         second = _col(other) if other is not None else None
         return aggregate(cls, this, second, ordered=False)
 
-    def moments(self) -> exp.Select:
+    def moments(self, segment: str | None = None) -> exp.Select:
+        """Per-variant moments of every reported metric; with ``segment`` (a ``[segments]``
+        column) per variant and segment value instead, of the analysed units only."""
+        keys: list[exp.Expr] = [_col("variant"), _col("is_bot"), _col("contaminated")]
+        if segment is not None:
+            keys = [_col("variant"), exp.alias_(_col(value_column(segment)), "segment")]
         select = exp.select(
-            _col("variant"),
-            _col("is_bot"),
-            _col("contaminated"),
+            *keys,
             exp.alias_(exp.Count(this=exp.Star()), "n_units"),
             exp.alias_(exp.cast(exp.Sum(this=_col("n_events")), BIGINT), "n_events"),
         )
@@ -368,12 +381,17 @@ class _Builder:
                     exp.alias_(self._agg(exp.Variance, y), cols.var_y),
                     exp.alias_(self._agg(exp.CovarSamp, capped_x.copy(), y), cols.cov_xy),
                 )
-        keys = [_col("variant"), _col("is_bot"), _col("contaminated")]
         source = select.from_(UNIT_TABLE)
         caps = cap_ctes(self.plan, UNIT_TABLE)
         if caps:
             source = source.join(exp.to_table(caps[-1][0]), join_type="cross")
-        return with_ctes(source.group_by(*keys).order_by(*keys), caps)
+        groups = [k.unalias() for k in keys]
+        if segment is not None:
+            source = source.where(analysed())
+            # NULL (no value) first on every engine, so the rows come in one order
+            order = [groups[0], exp.Ordered(this=groups[1].copy(), nulls_first=True)]
+            return with_ctes(source.group_by(*groups).order_by(*order), caps)
+        return with_ctes(source.group_by(*groups).order_by(*groups), caps)
 
     def unit_rows(self) -> exp.Select:
         query = self.classified()
@@ -395,6 +413,7 @@ class _Builder:
             ("data_quality", data_quality_query(self.plan, UNIT_TABLE)),
             *check_results(self.plan),
             *extra_results(self.plan, UNIT_TABLE, ordered=self.ordered),
+            *[(result_name(c), self.moments(segment=c)) for c in segment_columns(self.plan)],
         )
         return CompiledRun(unit_rows=self.unit_rows(), results=results)
 

@@ -18,6 +18,7 @@ import sqlglot.expressions as exp
 
 from metricforge.compile.expressions import qualify
 from metricforge.compile.quality import exact, value_checks
+from metricforge.compile.segments import session_keys
 from metricforge.compile.sqlparts import DOUBLE, timestamp
 from metricforge.compile.sqlparts import all_of as _and
 from metricforge.compile.sqlparts import case as _case
@@ -95,6 +96,7 @@ def sessions(plan: Plan, *, ts_bounds: bool = True) -> exp.Select:
         if flag is not None:
             flag = _and(flag, in_window.copy() if in_window is not None else None)
             select = select.select(exp.alias_(exp.LogicalOr(this=flag), f"bot_rule_{i}"))
+    select = select.select(*session_keys(plan, e, in_window))
     for metric in plan.metrics:
         select = select.select(*_session_parts(metric, e, "", in_window))
         for period, cond in earlier:

@@ -20,6 +20,7 @@ from __future__ import annotations
 import sqlglot.expressions as exp
 
 from metricforge.compile.quality import DUPLICATE_EXPOSURES, unit_columns
+from metricforge.compile.segments import merged_keys
 from metricforge.compile.sqlparts import BIGINT, DOUBLE, aggregate, case, col, sorted_concat
 from metricforge.spec.model import Kind, Plan, RuleKind
 
@@ -127,6 +128,7 @@ def _stitched(plan: Plan, ordered: bool, periods: list[str]) -> exp.Select:
             select = select.select(
                 exp.alias_(exp.Max(this=col(f"bot_rule_{k}", i)), f"bot_rule_{k}")
             )
+    select = select.select(*merged_keys(plan, i))
     for metric in plan.metrics:
         for period in ("", *periods):
             select = select.select(*_merged_metric(plan, metric.name, period, ordered))

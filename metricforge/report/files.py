@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import json
 import math
 from collections.abc import Mapping, Sequence
@@ -17,6 +18,8 @@ from metricforge.report.publish import check_target, protected_paths, publish, r
 from metricforge.report.scorecard import Scorecard
 from metricforge.runner import RunData
 from metricforge.spec.model import Plan
+
+SEGMENTS_FILE = "segments.parquet"  # written only when the spec has [segments]
 
 
 def _json_default(value: object) -> object:
@@ -46,13 +49,19 @@ def prepare_output(out: Path, plan: Plan) -> Path:
 
 
 def write_outputs(out: Path, data: RunData, card: Scorecard) -> None:
-    """Write scorecard.parquet, scorecard.json and manifest.json into ``out`` atomically."""
+    """Write scorecard.parquet, scorecard.json and manifest.json (and with ``[segments]``
+    segments.parquet) into ``out`` atomically."""
     target = check_target(out, *protected_paths(data.plan))
     files = {
         "scorecard.parquet": parquet_bytes(card.table()),
         "scorecard.json": dump_json(card.as_json()),
-        "manifest.json": dump_json(manifest(data, card)),
     }
+    record = manifest(data, card)
+    if card.segments is not None:  # [segments]: a file of its own, its hash in the manifest
+        files[SEGMENTS_FILE] = parquet_bytes(card.segments.table())
+        digest = hashlib.sha256(files[SEGMENTS_FILE]).hexdigest()
+        record["outputs"] = {SEGMENTS_FILE: {"sha256": digest}}
+    files["manifest.json"] = dump_json(record)
     publish(target, files)
 
 

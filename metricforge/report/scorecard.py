@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import contextlib
 import functools
 import math
 from dataclasses import dataclass, field
@@ -14,13 +13,13 @@ from metricforge.checks import trust_section
 from metricforge.checks.bots import event_shares
 from metricforge.checks.contamination import two_variant_counts
 from metricforge.checks.identity import identity_section
-from metricforge.errors import StatsError
 from metricforge.report.adjusted import adjusted_effect, extra_columns
 from metricforge.report.arrow_rows import table_from_rows
+from metricforge.report.effect_fields import EFFECT_FIELDS, effect_fields
 from metricforge.report.inference import TWO_SIDED, adjust, factorial_rows, hypothesis
+from metricforge.report.segments import Breakdown, build_segments
 from metricforge.runner import RunData
 from metricforge.spec.model import MetricDef, Role
-from metricforge.stats import Effect, compare, ratio_point_and_variance
 
 SCORECARD_SCHEMA = pa.schema(
     [
@@ -62,18 +61,6 @@ SCORECARD_SCHEMA = pa.schema(
     ]
 )
 
-_EFFECT_FIELDS = (
-    "value",
-    "control_value",
-    "abs_effect",
-    "abs_ci_low",
-    "abs_ci_high",
-    "rel_effect",
-    "rel_ci_low",
-    "rel_ci_high",
-    "p_value",
-)
-
 
 @dataclass(frozen=True)
 class Scorecard:
@@ -83,6 +70,7 @@ class Scorecard:
     stamp: dict[str, Any]
     identity: dict[str, Any] | None = None  # what identity stitching merged, if it ran
     quality: dict[str, Any] = field(default_factory=dict)
+    segments: Breakdown | None = None  # [segments]: the segment rows and their section
 
     def table(self) -> pa.Table:
         return table_from_rows(self.rows, SCORECARD_SCHEMA)
@@ -96,6 +84,7 @@ class Scorecard:
             "variants": self.variants,
             "data_quality": self.quality,
             "metrics": [_clean(r) for r in self.rows],
+            **({"segments": self.segments.section} if self.segments is not None else {}),
         }
 
 
@@ -108,21 +97,15 @@ def _clean(row: dict[str, Any]) -> dict[str, Any]:
 def _effect_fields(
     data: RunData, metric: str, variant: str, side: int, margin: float | None
 ) -> tuple[dict[str, Any], str]:
-    moments = data.moments[metric]
-    control = data.plan.spec.control
-    try:
-        effect: Effect = adjusted_effect(
-            data, metric, variant, side=side, margin=margin
-        ) or compare(
-            moments[variant], moments[control], alpha=data.plan.spec.alpha, side=side, margin=margin
-        )
-    except StatsError as err:
-        fields: dict[str, Any] = {f: float("nan") for f in _EFFECT_FIELDS}
-        for name, v in (("value", variant), ("control_value", control)):
-            with contextlib.suppress(StatsError):
-                fields[name] = ratio_point_and_variance(moments[v])[0]
-        return fields, f"not computed: {err.message}"
-    return {f: float(getattr(effect, f)) for f in _EFFECT_FIELDS}, effect.method
+    return effect_fields(
+        data.moments[metric],
+        variant,
+        data.plan.spec.control,
+        alpha=data.plan.spec.alpha,
+        side=side,
+        margin=margin,
+        adjusted=lambda: adjusted_effect(data, metric, variant, side=side, margin=margin),
+    )
 
 
 def _base_row(
@@ -140,7 +123,7 @@ def _base_row(
         "control": spec.control,
         "n_units": 0,
         "n_units_control": 0,
-        **{f: float("nan") for f in _EFFECT_FIELDS},
+        **{f: float("nan") for f in EFFECT_FIELDS},
         "alpha": spec.alpha,
         "method": "",
         "hypothesis": TWO_SIDED,
@@ -199,6 +182,7 @@ def build(data: RunData) -> Scorecard:
         stamp=stamp,
         identity=identity_section(data),
         quality=data.quality,
+        segments=build_segments(data, row_stamp),
     )
 
 

@@ -104,10 +104,45 @@ def render(card: Scorecard, console: Console) -> None:
             style="bold" if significant else None,
         )
     console.print(table)
+    if card.segments is not None:
+        render_segments(card.segments.section, card.stamp["experiment"], console)
     s = card.stamp
     console.print(
         f"bot filter {s['bot_filter']}@{s['bot_filter_version']} ({s['bot_filter_sha256'][:12]}),"
         f" definitions {s['definitions_sha256'][:12]}, spec {s['spec_sha256'][:12]},"
         f" inputs {s['inputs_fingerprint'][:12]}, {s['engine']} {s['engine_version']},"
         f" metricforge {s['tool_version']}"
+    )
+
+
+def _column_note(c: dict[str, Any]) -> str:
+    note = f"{c['column']}: {c['values_shown']} value(s)"
+    if c["values_pooled"]:
+        fate = "shown" if c["other"] == "shown" else "suppressed (below min_units)"
+        note += f", {c['values_pooled']} pooled into (other), {fate}"
+    return note
+
+
+def render_segments(section: dict[str, Any], experiment: str, console: Console) -> None:
+    """The decision metric per segment value, and one line on the whole breakdown."""
+    rows = [r for r in section["rows"] if r["role"] == "decision"]
+    table = Table(title=None, show_lines=False)
+    for col in ("segment", "value", "variant", "n", "rel effect (CI)", "p (bh)"):
+        table.add_column(col, justify="left" if col in ("segment", "value") else "right")
+    for r in rows:
+        table.add_row(
+            r["segment_column"],
+            r["segment_value"],
+            r["variant"],
+            "–" if r["n_units"] is None else str(r["n_units"]),
+            f"{_pct(r['rel_effect'])} ({_pct(r['rel_ci_low'])}, {_pct(r['rel_ci_high'])})",
+            _num(r["p_value_adjusted"], 3),
+        )
+    console.print(f"segments of {experiment}'s decision metric (exploratory):", markup=False)
+    console.print(table)
+    notes = "; ".join(_column_note(c) for c in section["columns"])
+    console.print(
+        f"segments: min {section['min_units']} units per cell; {notes};"
+        f" {section['adjustment']}; all rows in {section['file']}",
+        markup=False,
     )

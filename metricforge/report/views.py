@@ -60,6 +60,8 @@ def render_comparison(c: Comparison, console: Console) -> None:
         console.print("[bold red]NOT COMPARABLE[/]: " + escape("; ".join(c.reasons)))
     if c.notes:
         console.print("also differs: " + escape("; ".join(c.notes)))
+    if c.left_out is not None:
+        console.print("not compared: " + escape(c.left_out))
     console.print("each cell: A → B (change, B − A)")
     counts = Table("variant", "units analysed", "bot units removed", "events analysed")
     for v in c.variants:

@@ -131,6 +131,14 @@ class Factor:
 
 
 @dataclass(frozen=True)
+class Segments:
+    """[segments]: break the effects down by unit attributes taken from the events."""
+
+    by: tuple[str, ...]  # event columns; a unit's value: see compile/segments.py
+    min_units: int  # minimum analysed units of every shown (segment value, variant) cell
+
+
+@dataclass(frozen=True)
 class ExperimentSpec:
     name: str
     path: Path
@@ -162,6 +170,7 @@ class ExperimentSpec:
     two_variant_units: TwoVariantPolicy = TwoVariantPolicy.EXCLUDE
     max_two_variant_share: float = 0.05  # trust check: share of exposed units in 2+ variants
     cuped: bool = False  # adjust each metric by its own pre-period value (needs pre_period_days)
+    segments: Segments | None = None  # [segments]: per-segment breakdowns, or none
 
     @property
     def variant_names(self) -> tuple[str, ...]:

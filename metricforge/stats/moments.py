@@ -148,3 +148,35 @@ def ratio_point_and_variance(m: Moments) -> tuple[float, float]:
     if not math.isfinite(var[0]):
         raise StatsError("the delta-method variance overflows: the moments are too large")
     return float(r[0]), float(var[0])
+
+
+def merge_moments(parts: Sequence[Moments]) -> Moments:
+    """The moments of the union of disjoint groups of units, from each group's moments.
+
+    Deviations from the union's mean, never raw power sums: with d = mean_g − μ,
+    M2 = Σ_g (M2_g + n_g d_x d_y) for every pair of variables (M2_g = (n_g − 1) (co)variance;
+    a group of one unit has none). Proportions add their exact counts of ones.
+    """
+    kept = [m for m in parts if m.n > 0]
+    if not kept:
+        return Moments.of_mean(0, math.nan, 0.0)
+    n = sum(m.n for m in kept)
+    if all(m.successes is not None for m in kept):
+        return Moments.of_proportion(n, sum(int(m.successes or 0) for m in kept))
+    mx = math.fsum(m.n * m.mean_x for m in kept) / n
+    my = math.fsum(m.n * m.mean_y for m in kept) / n
+
+    def m2(var: str, a: str, b: str, mean_a: float, mean_b: float) -> float:
+        total = math.fsum(
+            (m.n - 1) * getattr(m, var) if m.n > 1 else 0.0 for m in kept
+        ) + math.fsum(m.n * (getattr(m, a) - mean_a) * (getattr(m, b) - mean_b) for m in kept)
+        return total / (n - 1) if n > 1 else math.nan
+
+    return Moments(
+        n=n,
+        mean_x=mx,
+        mean_y=my,
+        var_x=m2("var_x", "mean_x", "mean_x", mx, mx),
+        var_y=m2("var_y", "mean_y", "mean_y", my, my),
+        cov_xy=m2("cov_xy", "mean_x", "mean_y", mx, my),
+    )

@@ -50,6 +50,18 @@ WITH first_exposure AS (
       )
       AND e.ts >= f.first_ts AS BOOLEAN)
     ) AS bot_rule_0,
+    MIN(
+      CASE
+        WHEN e.ts >= f.first_ts AND NOT e.device IS NULL
+        THEN LPAD(CAST(EPOCH_MS(e.ts) AS TEXT), 20, '0') || e.device
+      END
+    ) AS segkey_device,
+    MIN(
+      CASE
+        WHEN e.ts >= f.first_ts AND NOT e.country IS NULL
+        THEN LPAD(CAST(EPOCH_MS(e.ts) AS TEXT), 20, '0') || e.country
+      END
+    ) AS segkey_country,
     SUM(
       CASE
         WHEN e.event IN ('purchase') AND e.ts >= f.first_ts
@@ -340,6 +352,8 @@ WITH first_exposure AS (
       CAST(SUM(dq_negative_page_latency) AS BIGINT) AS dq_negative_page_latency,
       CAST(SUM(dq_ignored_revenue_winsorised) AS BIGINT) AS dq_ignored_revenue_winsorised,
       CAST(SUM(dq_negative_revenue_winsorised) AS BIGINT) AS dq_negative_revenue_winsorised,
+      MIN(segkey_device) AS segkey_device,
+      MIN(segkey_country) AS segkey_country,
       CAST(COALESCE(SUM(s_revenue), 0) AS DOUBLE) AS u_revenue,
       CAST(COALESCE(SUM(spre_revenue), 0) AS DOUBLE) AS upre_revenue,
       CAST(COALESCE(SUM(s_unsubscribes), 0) AS BIGINT) AS u_unsubscribes,
@@ -400,6 +414,8 @@ SELECT
   dq_negative_page_latency,
   dq_ignored_revenue_winsorised,
   dq_negative_revenue_winsorised,
+  SUBSTRING(segkey_device, 21) AS seg_device,
+  SUBSTRING(segkey_country, 21) AS seg_country,
   n_pre_events > 0 AS has_pre,
   CAST(u_revenue AS DOUBLE) AS x_revenue,
   CAST(upre_revenue AS DOUBLE) AS xpre_revenue,
@@ -1238,3 +1254,233 @@ JOIN q_ends AS e
   ON b.variant = e.variant
 ORDER BY
   b.variant;
+
+-- segments_device
+WITH cap_values AS (
+  SELECT
+    'revenue_winsorised' AS k,
+    CAST(x_revenue_winsorised AS DOUBLE) AS v,
+    CAST(0.999 AS DOUBLE) AS lvl
+  FROM unit_rows
+  WHERE
+    (
+      NOT is_bot AND NOT contaminated
+    ) AND NOT x_revenue_winsorised IS NULL
+  UNION ALL
+  SELECT
+    'revenue_winsorised:pre' AS k,
+    CAST(xpre_revenue_winsorised AS DOUBLE) AS v,
+    CAST(0.999 AS DOUBLE) AS lvl
+  FROM unit_rows
+  WHERE
+    (
+      NOT is_bot AND NOT contaminated
+    ) AND NOT x_revenue_winsorised IS NULL
+), cap_ranked AS (
+  SELECT
+    k,
+    lvl,
+    v,
+    ROW_NUMBER() OVER (PARTITION BY k ORDER BY v) - 1 AS r,
+    COUNT(*) OVER (PARTITION BY k) AS n
+  FROM cap_values
+), cap_levels AS (
+  SELECT
+    k,
+    MAX(CASE WHEN r = FLOOR(CAST(n - 1 AS DOUBLE) * lvl) THEN v END) + MAX(CAST(n - 1 AS DOUBLE) * lvl - FLOOR(CAST(n - 1 AS DOUBLE) * lvl)) * (
+      MAX(CASE WHEN r = CEIL(CAST(n - 1 AS DOUBLE) * lvl) THEN v END) - MAX(CASE WHEN r = FLOOR(CAST(n - 1 AS DOUBLE) * lvl) THEN v END)
+    ) AS cap
+  FROM cap_ranked
+  GROUP BY
+    k
+), caps AS (
+  SELECT
+    MAX(CASE WHEN k = 'revenue_winsorised' THEN cap END) AS revenue_winsorised__cap,
+    MAX(CASE WHEN k = 'revenue_winsorised:pre' THEN cap END) AS revenue_winsorised__cap_pre
+  FROM cap_levels
+)
+SELECT
+  variant,
+  seg_device AS segment,
+  COUNT(*) AS n_units,
+  CAST(SUM(n_events) AS BIGINT) AS n_events,
+  COUNT(x_revenue) AS revenue__n,
+  AVG(x_revenue) AS revenue__mean_x,
+  VARIANCE(x_revenue) AS revenue__var_x,
+  COUNT(x_unsubscribes) AS unsubscribes__n,
+  AVG(x_unsubscribes) AS unsubscribes__mean_x,
+  VARIANCE(x_unsubscribes) AS unsubscribes__var_x,
+  COUNT(x_page_latency) AS page_latency__n,
+  AVG(x_page_latency) AS page_latency__mean_x,
+  VARIANCE(x_page_latency) AS page_latency__var_x,
+  COUNT(x_page_latency_p95) AS page_latency_p95__n,
+  AVG(x_page_latency_p95) AS page_latency_p95__mean_x,
+  VARIANCE(x_page_latency_p95) AS page_latency_p95__var_x,
+  COUNT(x_purchases) AS purchases__n,
+  AVG(x_purchases) AS purchases__mean_x,
+  VARIANCE(x_purchases) AS purchases__var_x,
+  COUNT(x_refunds) AS refunds__n,
+  AVG(x_refunds) AS refunds__mean_x,
+  VARIANCE(x_refunds) AS refunds__var_x,
+  COUNT(x_buyer_share) AS buyer_share__n,
+  AVG(x_buyer_share) AS buyer_share__mean_x,
+  VARIANCE(x_buyer_share) AS buyer_share__var_x,
+  CAST(SUM(CAST(x_buyer_share AS BIGINT)) AS BIGINT) AS buyer_share__successes,
+  COUNT(x_mobile_purchases) AS mobile_purchases__n,
+  AVG(x_mobile_purchases) AS mobile_purchases__mean_x,
+  VARIANCE(x_mobile_purchases) AS mobile_purchases__var_x,
+  COUNT(x_click_through) AS click_through__n,
+  AVG(x_click_through) AS click_through__mean_x,
+  VARIANCE(x_click_through) AS click_through__var_x,
+  AVG(y_click_through) AS click_through__mean_y,
+  VARIANCE(y_click_through) AS click_through__var_y,
+  COVAR_SAMP(x_click_through, y_click_through) AS click_through__cov_xy,
+  COUNT(x_session_success) AS session_success__n,
+  AVG(x_session_success) AS session_success__mean_x,
+  VARIANCE(x_session_success) AS session_success__var_x,
+  AVG(y_session_success) AS session_success__mean_y,
+  VARIANCE(y_session_success) AS session_success__var_y,
+  COVAR_SAMP(x_session_success, y_session_success) AS session_success__cov_xy,
+  COUNT(x_net_value) AS net_value__n,
+  AVG(x_net_value) AS net_value__mean_x,
+  VARIANCE(x_net_value) AS net_value__var_x,
+  COUNT(x_revenue_winsorised) AS revenue_winsorised__n,
+  AVG(
+    CASE
+      WHEN x_revenue_winsorised > caps.revenue_winsorised__cap
+      THEN caps.revenue_winsorised__cap
+      ELSE x_revenue_winsorised
+    END
+  ) AS revenue_winsorised__mean_x,
+  VARIANCE(
+    CASE
+      WHEN x_revenue_winsorised > caps.revenue_winsorised__cap
+      THEN caps.revenue_winsorised__cap
+      ELSE x_revenue_winsorised
+    END
+  ) AS revenue_winsorised__var_x
+FROM unit_rows
+CROSS JOIN caps
+WHERE
+  NOT is_bot AND NOT contaminated
+GROUP BY
+  variant,
+  seg_device
+ORDER BY
+  variant,
+  seg_device NULLS FIRST;
+
+-- segments_country
+WITH cap_values AS (
+  SELECT
+    'revenue_winsorised' AS k,
+    CAST(x_revenue_winsorised AS DOUBLE) AS v,
+    CAST(0.999 AS DOUBLE) AS lvl
+  FROM unit_rows
+  WHERE
+    (
+      NOT is_bot AND NOT contaminated
+    ) AND NOT x_revenue_winsorised IS NULL
+  UNION ALL
+  SELECT
+    'revenue_winsorised:pre' AS k,
+    CAST(xpre_revenue_winsorised AS DOUBLE) AS v,
+    CAST(0.999 AS DOUBLE) AS lvl
+  FROM unit_rows
+  WHERE
+    (
+      NOT is_bot AND NOT contaminated
+    ) AND NOT x_revenue_winsorised IS NULL
+), cap_ranked AS (
+  SELECT
+    k,
+    lvl,
+    v,
+    ROW_NUMBER() OVER (PARTITION BY k ORDER BY v) - 1 AS r,
+    COUNT(*) OVER (PARTITION BY k) AS n
+  FROM cap_values
+), cap_levels AS (
+  SELECT
+    k,
+    MAX(CASE WHEN r = FLOOR(CAST(n - 1 AS DOUBLE) * lvl) THEN v END) + MAX(CAST(n - 1 AS DOUBLE) * lvl - FLOOR(CAST(n - 1 AS DOUBLE) * lvl)) * (
+      MAX(CASE WHEN r = CEIL(CAST(n - 1 AS DOUBLE) * lvl) THEN v END) - MAX(CASE WHEN r = FLOOR(CAST(n - 1 AS DOUBLE) * lvl) THEN v END)
+    ) AS cap
+  FROM cap_ranked
+  GROUP BY
+    k
+), caps AS (
+  SELECT
+    MAX(CASE WHEN k = 'revenue_winsorised' THEN cap END) AS revenue_winsorised__cap,
+    MAX(CASE WHEN k = 'revenue_winsorised:pre' THEN cap END) AS revenue_winsorised__cap_pre
+  FROM cap_levels
+)
+SELECT
+  variant,
+  seg_country AS segment,
+  COUNT(*) AS n_units,
+  CAST(SUM(n_events) AS BIGINT) AS n_events,
+  COUNT(x_revenue) AS revenue__n,
+  AVG(x_revenue) AS revenue__mean_x,
+  VARIANCE(x_revenue) AS revenue__var_x,
+  COUNT(x_unsubscribes) AS unsubscribes__n,
+  AVG(x_unsubscribes) AS unsubscribes__mean_x,
+  VARIANCE(x_unsubscribes) AS unsubscribes__var_x,
+  COUNT(x_page_latency) AS page_latency__n,
+  AVG(x_page_latency) AS page_latency__mean_x,
+  VARIANCE(x_page_latency) AS page_latency__var_x,
+  COUNT(x_page_latency_p95) AS page_latency_p95__n,
+  AVG(x_page_latency_p95) AS page_latency_p95__mean_x,
+  VARIANCE(x_page_latency_p95) AS page_latency_p95__var_x,
+  COUNT(x_purchases) AS purchases__n,
+  AVG(x_purchases) AS purchases__mean_x,
+  VARIANCE(x_purchases) AS purchases__var_x,
+  COUNT(x_refunds) AS refunds__n,
+  AVG(x_refunds) AS refunds__mean_x,
+  VARIANCE(x_refunds) AS refunds__var_x,
+  COUNT(x_buyer_share) AS buyer_share__n,
+  AVG(x_buyer_share) AS buyer_share__mean_x,
+  VARIANCE(x_buyer_share) AS buyer_share__var_x,
+  CAST(SUM(CAST(x_buyer_share AS BIGINT)) AS BIGINT) AS buyer_share__successes,
+  COUNT(x_mobile_purchases) AS mobile_purchases__n,
+  AVG(x_mobile_purchases) AS mobile_purchases__mean_x,
+  VARIANCE(x_mobile_purchases) AS mobile_purchases__var_x,
+  COUNT(x_click_through) AS click_through__n,
+  AVG(x_click_through) AS click_through__mean_x,
+  VARIANCE(x_click_through) AS click_through__var_x,
+  AVG(y_click_through) AS click_through__mean_y,
+  VARIANCE(y_click_through) AS click_through__var_y,
+  COVAR_SAMP(x_click_through, y_click_through) AS click_through__cov_xy,
+  COUNT(x_session_success) AS session_success__n,
+  AVG(x_session_success) AS session_success__mean_x,
+  VARIANCE(x_session_success) AS session_success__var_x,
+  AVG(y_session_success) AS session_success__mean_y,
+  VARIANCE(y_session_success) AS session_success__var_y,
+  COVAR_SAMP(x_session_success, y_session_success) AS session_success__cov_xy,
+  COUNT(x_net_value) AS net_value__n,
+  AVG(x_net_value) AS net_value__mean_x,
+  VARIANCE(x_net_value) AS net_value__var_x,
+  COUNT(x_revenue_winsorised) AS revenue_winsorised__n,
+  AVG(
+    CASE
+      WHEN x_revenue_winsorised > caps.revenue_winsorised__cap
+      THEN caps.revenue_winsorised__cap
+      ELSE x_revenue_winsorised
+    END
+  ) AS revenue_winsorised__mean_x,
+  VARIANCE(
+    CASE
+      WHEN x_revenue_winsorised > caps.revenue_winsorised__cap
+      THEN caps.revenue_winsorised__cap
+      ELSE x_revenue_winsorised
+    END
+  ) AS revenue_winsorised__var_x
+FROM unit_rows
+CROSS JOIN caps
+WHERE
+  NOT is_bot AND NOT contaminated
+GROUP BY
+  variant,
+  seg_country
+ORDER BY
+  variant,
+  seg_country NULLS FIRST;
