@@ -18,6 +18,7 @@ from metricforge.errors import StatsError
 from metricforge.report.adjusted import adjusted_effect, extra_columns
 from metricforge.report.arrow_rows import table_from_rows
 from metricforge.report.inference import TWO_SIDED, adjust, factorial_rows, hypothesis
+from metricforge.report.sequential import sequential_section
 from metricforge.runner import RunData
 from metricforge.spec.model import MetricDef, Role
 from metricforge.stats import Effect, compare, ratio_point_and_variance
@@ -83,6 +84,7 @@ class Scorecard:
     stamp: dict[str, Any]
     identity: dict[str, Any] | None = None  # what identity stitching merged, if it ran
     quality: dict[str, Any] = field(default_factory=dict)
+    sequential: dict[str, Any] | None = None  # [sequential]: report/sequential.py
 
     def table(self) -> pa.Table:
         return table_from_rows(self.rows, SCORECARD_SCHEMA)
@@ -96,6 +98,7 @@ class Scorecard:
             "variants": self.variants,
             "data_quality": self.quality,
             "metrics": [_clean(r) for r in self.rows],
+            **({"sequential": self.sequential} if self.sequential is not None else {}),
         }
 
 
@@ -199,6 +202,7 @@ def build(data: RunData) -> Scorecard:
         stamp=stamp,
         identity=identity_section(data),
         quality=data.quality,
+        sequential=sequential_section(data),
     )
 
 
