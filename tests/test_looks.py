@@ -7,7 +7,6 @@ import datetime as dt
 import json
 from pathlib import Path
 
-import polars as pl
 import pytest
 from typer.testing import CliRunner
 
@@ -17,8 +16,9 @@ from metricforge.engines.base import Engine
 from metricforge.looks import cutoffs, parse_every
 from metricforge.runner import execute
 from metricforge.spec import load_plan
-from tests.conftest import PIPELINES, SAMPLE
-from tests.test_demo_independent import SESSION_LIMIT, UA_TOKENS
+from tests.conftest import PIPELINES
+from tests.test_compare import independent
+from tests.test_demo_independent import SESSION_LIMIT
 from tests.test_sequential_spec import spec_with
 
 DEMO = PIPELINES / "checkout_layout.toml"
@@ -78,60 +78,19 @@ def test_the_cutoff_bounds_exposures_and_events_in_the_one_scan(dialect: str) ->
     assert "ts < " + literal in sql and "e.ts < " + literal in sql
 
 
-def independent_as_of(cutoff: dt.datetime) -> dict[str, tuple[int, float]]:
-    """variant -> (analysed units, mean revenue per unit) of checkout_layout as seen at
-    ``cutoff``, in plain polars from the raw demo logs (bots@2: user-agent tokens and long
-    sessions; units seen in two variants left out)."""
-    exposures = (
-        pl.read_parquet(SAMPLE / "exposures.parquet")
-        .filter(
-            (pl.col("experiment") == "checkout_layout")
-            & (pl.col("ts") >= START)
-            & (pl.col("ts") < END)
-            & (pl.col("ts") < cutoff)
-        )
-        .group_by("unit_id")
-        .agg(
-            pl.col("ts").min().alias("first_ts"),
-            pl.col("variant").min(),
-            pl.col("variant").n_unique().alias("n_var"),
-        )
-    )
-    events = pl.read_parquet(SAMPLE / "events" / "**" / "*.parquet", hive_partitioning=False)
-    seen = events.join(exposures, left_on="cookie_id", right_on="unit_id").filter(
-        (pl.col("ts") >= pl.col("first_ts"))
-        & (pl.col("ts") < pl.col("first_ts") + WINDOW)
-        & (pl.col("ts") < cutoff)
-    )
-    ua = pl.col("user_agent").str.to_lowercase()
-    by_agent = seen.filter(pl.any_horizontal([ua.str.contains(t, literal=True) for t in UA_TOKENS]))
-    long = seen.group_by("cookie_id", "session_id").len().filter(pl.col("len") > SESSION_LIMIT)
-    bots = set(by_agent["cookie_id"]) | set(long["cookie_id"])
-    units = exposures.filter((pl.col("n_var") == 1) & ~pl.col("unit_id").is_in(list(bots)))
-    revenue = (
-        seen.filter(pl.col("event") == "purchase")
-        .group_by("cookie_id")
-        .agg(pl.col("value").sum().alias("revenue"))
-    )
-    table = units.join(revenue, left_on="unit_id", right_on="cookie_id", how="left")
-    table = table.with_columns(pl.col("revenue").fill_null(0.0))
-    out = table.group_by("variant").agg(pl.len(), pl.col("revenue").mean())
-    return {r["variant"]: (r["len"], r["revenue"]) for r in out.iter_rows(named=True)}
-
-
 @pytest.mark.slow
-@pytest.mark.parametrize("cutoff", [dt.datetime(2026, 9, 18, 12), dt.datetime(2026, 9, 25)])
-def test_a_look_sees_only_what_had_happened_by_its_cutoff(
-    engine: Engine, cutoff: dt.datetime
-) -> None:
-    """The as-of run (DuckDB and Spark) against an independent polars cut of the raw logs."""
+def test_a_look_sees_only_what_had_happened_by_its_cutoff(engine: Engine) -> None:
+    """The as-of run (DuckDB and Spark) against an independent polars cut of the raw demo
+    logs (tests/test_compare.py: units and mean revenue per variant, bots@2 rules)."""
+    cutoff = dt.datetime(2026, 9, 18, 12)
     data = execute(dataclasses.replace(load_plan(DEMO), as_of=cutoff), engine)
-    expected = independent_as_of(cutoff)
-    full = execute(load_plan(DEMO), engine)
+    expected = independent(SESSION_LIMIT, cutoff)
+    everything = independent(SESSION_LIMIT)
+    assert sorted(expected) == ["control", "treatment"]
     for variant, (units, revenue) in expected.items():
         assert data.counts[variant].units == units
         assert data.moments["revenue"][variant].mean_x == pytest.approx(revenue, rel=1e-9)
-        assert units < full.counts[variant].units  # later units are truly left out
+        assert units < everything[variant][0]  # later units are truly left out
 
 
 @pytest.mark.slow
