@@ -189,6 +189,30 @@ def lock(
     _guard(action)
 
 
+@app.command()
+def looks(
+    pipeline: PipelineArg,
+    every: Annotated[str, typer.Option(help="Time between looks: 1d, 12h, ...")] = "1d",
+    as_json: Annotated[bool, typer.Option("--json", help="Print the looks as JSON.")] = False,
+) -> None:
+    """Replay the looks at the experiment over time: ordinary and always-valid p-values."""
+    from metricforge.engines.choose import open_engine
+    from metricforge.looks import parse_every, render_looks, replay_looks
+    from metricforge.report.files import dump_json
+    from metricforge.spec import load_plan
+
+    def action() -> None:
+        plan, step = load_plan(pipeline), parse_every(every)
+        with open_engine(EngineName.duckdb) as engine:
+            report = replay_looks(plan, engine, step)
+        if as_json:
+            sys.stdout.write(dump_json(report).decode("utf-8"))
+        else:
+            render_looks(report, out_console)
+
+    _guard(action)
+
+
 class Period(StrEnum):
     pre = "pre"
     experiment = "experiment"

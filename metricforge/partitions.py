@@ -48,11 +48,16 @@ def event_window(plan: Plan) -> tuple[dt.datetime, dt.datetime]:
     pre-period) to the end plus each unit's analysis window."""
     spec = plan.spec
     first = spec.start - dt.timedelta(days=plan.pre_period_days)
-    return first, spec.end + dt.timedelta(days=spec.window_days)
+    return first, _cut(plan, spec.end + dt.timedelta(days=spec.window_days))
 
 
 def exposure_window(plan: Plan) -> tuple[dt.datetime, dt.datetime]:
-    return plan.spec.start, plan.spec.end
+    return plan.spec.start, _cut(plan, plan.spec.end)
+
+
+def _cut(plan: Plan, last: dt.datetime) -> dt.datetime:
+    """``last``, or the plan's cut-off time (``Plan.as_of``) when that is earlier."""
+    return last if plan.as_of is None else max(plan.spec.start, min(last, plan.as_of))
 
 
 def _midnight(day: dt.date) -> dt.datetime:

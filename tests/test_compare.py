@@ -29,13 +29,17 @@ def invoke(*args: str | Path) -> Any:
     return CliRunner().invoke(app, [str(a) for a in args])
 
 
-def independent(session_limit: int | None) -> dict[str, tuple[int, float]]:
+def independent(
+    session_limit: int | None, cutoff: dt.datetime | None = None
+) -> dict[str, tuple[int, float]]:
     """variant -> (units analysed, mean revenue per unit) of checkout_layout, in plain polars,
-    under the user-agent rule and (bots@2) the per-session event limit."""
+    under the user-agent rule and (bots@2) the per-session event limit; with ``cutoff``, as
+    seen at that time (only exposures and events before it)."""
+    last = END if cutoff is None else min(END, cutoff)
     first = (
         pl.read_parquet(SAMPLE / "exposures.parquet")
         .filter(pl.col("experiment") == "checkout_layout")
-        .filter(pl.col("ts").is_between(START, END, closed="left"))
+        .filter(pl.col("ts").is_between(START, last, closed="left"))
         .group_by("unit_id")
         .agg(
             pl.col("ts").min().alias("t0"),
@@ -44,6 +48,8 @@ def independent(session_limit: int | None) -> dict[str, tuple[int, float]]:
         )
     )
     events = pl.read_parquet(SAMPLE / "events" / "**" / "*.parquet", hive_partitioning=False)
+    if cutoff is not None:
+        events = events.filter(pl.col("ts") < cutoff)
     seen = events.join(first, left_on="cookie_id", right_on="unit_id").filter(
         (pl.col("ts") >= pl.col("t0")) & (pl.col("ts") < pl.col("t0") + WINDOW)
     )

@@ -2,12 +2,14 @@
 
 ``metricforge lock PIPELINE`` writes ``<spec name>.lock.json`` beside the spec: the decision
 metric, the guardrails, alpha, the guardrails' non-inferiority margins, whether CUPED is on
-and the pre-period's length, and a content hash of each metric's definition (with the
-definitions it is built from; descriptions and unit labels left out), stamped with the real
-time of locking — there is no way to set another time. ``run`` compares:
+and the pre-period's length, the [sequential] settings (only when the spec has them), and a
+content hash of each metric's definition (with the definitions it is built from;
+descriptions and unit labels left out), stamped with the real time of locking — there is no
+way to set another time. ``run`` compares:
   fail  something locked changed (decision metric, guardrails, alpha, a margin, CUPED or
-        pre_period_days, a definition; a lock written before margins, CUPED and the
-        pre-period were recorded is compared on what it holds);
+        pre_period_days, [sequential] added, changed or removed, a definition; a lock
+        written before margins, CUPED and the pre-period were recorded is compared on what
+        it holds; a lock without [sequential] stands for a spec without it);
   warn  there is no lock, or it was made at or after the experiment's start (it cannot show
         that the metric was chosen before the data existed);
   pass  a lock made before the start, unchanged.
@@ -74,6 +76,7 @@ def lock_record(plan: Plan, now: dt.datetime) -> dict[str, Any]:
         "guardrail_margins": dict(spec.guardrail_margins),
         "cuped": spec.cuped,
         "pre_period_days": spec.pre_period_days,
+        **({"sequential": spec.sequential.record()} if spec.sequential is not None else {}),
         "tool_version": __version__,
     }
 
@@ -147,11 +150,32 @@ def parse_lock(text: str, path: Path) -> dict[str, Any]:
         and all(isinstance(v, int | float) and not isinstance(v, bool) for v in margins.values()),
         "cuped": isinstance(data.get("cuped", False), bool),
         "pre_period_days": type(data.get("pre_period_days", 0)) is int,
+        "sequential": _well_formed_sequential(data.get("sequential")),
     }
     for key, ok in kinds.items():
         if not ok:
             raise SpecError("malformed value", file=str(path), key=key)
     return dict(data)
+
+
+def _well_formed_sequential(value: object) -> bool:
+    """None (no [sequential] when locked) or {"effect": number, "baseline": {metric: number}}."""
+    if value is None:
+        return True
+    if not isinstance(value, dict) or set(value) != {"effect", "baseline"}:
+        return False
+    baseline = value["baseline"]
+    if not isinstance(baseline, dict):
+        return False
+    numbers = [value["effect"], *baseline.values()]
+    return all(isinstance(v, int | float) and not isinstance(v, bool) for v in numbers)
+
+
+def _sequential_text(record: dict[str, Any] | None) -> str:
+    if record is None:
+        return "none"
+    base = ", ".join(f"{k} {v:g}" for k, v in sorted(record["baseline"].items()))
+    return f"effect {record['effect']:g}" + (f", baseline {base}" if base else "")
 
 
 def _percent(margin: float | None) -> str:
@@ -175,6 +199,15 @@ def _analysis_changes(spec: ExperimentSpec, lock: dict[str, Any]) -> list[str]:
     if "pre_period_days" in lock and lock["pre_period_days"] != spec.pre_period_days:
         out.append(
             f"pre_period_days changed from {lock['pre_period_days']} to {spec.pre_period_days}"
+        )
+    now_seq = spec.sequential.record() if spec.sequential is not None else None
+    # A lock holds [sequential] only if the spec had one: a lock without it records "none",
+    # so a table added, changed or removed after the lock is a change.
+    locked_seq = lock.get("sequential")
+    if locked_seq != now_seq:
+        out.append(
+            f"[sequential] changed from {_sequential_text(locked_seq)} to"
+            f" {_sequential_text(now_seq)}"
         )
     return out
 

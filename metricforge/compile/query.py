@@ -126,6 +126,7 @@ class _Builder:
                     _col("variant").is_(exp.null()).not_(),
                     _col("ts") >= timestamp(self.spec.start),
                     _col("ts") < timestamp(self.spec.end),
+                    _col("ts") < timestamp(self.plan.as_of) if self.plan.as_of else None,
                 )
             )
             .group_by(_col("unit_id"), _col("variant"), _col("ts"))

@@ -63,6 +63,8 @@ def sessions(plan: Plan, *, ts_bounds: bool = True) -> exp.Select:
         _col("ts", e) < exp.Add(this=_col("first_ts", f), expression=window),
         _col("ts", e) >= timestamp(spec.start - dt.timedelta(days=pre)) if ts_bounds else None,
         _col("ts", e) < timestamp(last) if ts_bounds else None,
+        # a look at time as_of (`metricforge looks`): nothing later has happened yet
+        _col("ts", e) < timestamp(plan.as_of) if plan.as_of is not None else None,
     )
     # With a pre-period, every experiment-period part is limited to events at or after
     # the first exposure, and each metric gets a twin per earlier period (`pre`, and for

@@ -18,6 +18,7 @@ from metricforge.report.arrow_rows import table_from_rows
 from metricforge.report.effect_fields import EFFECT_FIELDS, effect_fields
 from metricforge.report.inference import TWO_SIDED, adjust, factorial_rows, hypothesis
 from metricforge.report.segments import Breakdown, build_segments
+from metricforge.report.sequential import sequential_section
 from metricforge.runner import RunData
 from metricforge.spec.model import MetricDef, Role
 
@@ -71,6 +72,7 @@ class Scorecard:
     identity: dict[str, Any] | None = None  # what identity stitching merged, if it ran
     quality: dict[str, Any] = field(default_factory=dict)
     segments: Breakdown | None = None  # [segments]: the segment rows and their section
+    sequential: dict[str, Any] | None = None  # [sequential]: report/sequential.py
 
     def table(self) -> pa.Table:
         return table_from_rows(self.rows, SCORECARD_SCHEMA)
@@ -85,6 +87,7 @@ class Scorecard:
             "data_quality": self.quality,
             "metrics": [_clean(r) for r in self.rows],
             **({"segments": self.segments.section} if self.segments is not None else {}),
+            **({"sequential": self.sequential} if self.sequential is not None else {}),
         }
 
 
@@ -183,6 +186,7 @@ def build(data: RunData) -> Scorecard:
         identity=identity_section(data),
         quality=data.quality,
         segments=build_segments(data, row_stamp),
+        sequential=sequential_section(data),
     )
 
 

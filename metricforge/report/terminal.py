@@ -106,6 +106,8 @@ def render(card: Scorecard, console: Console) -> None:
     console.print(table)
     if card.segments is not None:
         render_segments(card.segments.section, card.stamp["experiment"], console)
+    if card.sequential is not None:
+        render_sequential(card.sequential, console)
     s = card.stamp
     console.print(
         f"bot filter {s['bot_filter']}@{s['bot_filter_version']} ({s['bot_filter_sha256'][:12]}),"
@@ -146,3 +148,22 @@ def render_segments(section: dict[str, Any], experiment: str, console: Console) 
         f" {section['adjustment']}; all rows in {section['file']}",
         markup=False,
     )
+
+
+def render_sequential(section: dict[str, Any], console: Console) -> None:
+    """The `sequential` section, one compact line per metric and arm."""
+    console.print(
+        f"always valid (effect {100 * section['effect']:.4g}%, alpha {section['alpha']:g},"
+        " this look; `metricforge looks` replays all looks):"
+    )
+    for r in section["rows"]:
+        if r["always_valid_p"] is None:
+            console.print(f"  {r['metric']} {r['variant']}: {r['method']}", markup=False)
+            continue
+        mark = " *" if r["always_valid_p"] < section["alpha"] else ""
+        console.print(
+            f"  {r['metric']} {r['variant']}: effect {_num(r['abs_effect'])}"
+            f" CS ({_num(r['cs_low'])}, {_num(r['cs_high'])}) p {_num(r['always_valid_p'], 3)}"
+            f"{mark}",
+            markup=False,
+        )

@@ -13,6 +13,7 @@ from metricforge.spec.filters import load_filter
 from metricforge.spec.metrics import load_library
 from metricforge.spec.model import ExperimentSpec, Factor, MetricDef, Plan, TwoVariantPolicy
 from metricforge.spec.segments import load_segments
+from metricforge.spec.sequential import load_sequential
 from metricforge.spec.tomlfile import Section, TomlFile, read_toml
 
 FIRST_YEAR, LAST_YEAR = 1970, 9000
@@ -72,7 +73,7 @@ def _local_path(sec: Section, key: str, text: str, base: Path) -> Path:
 def load_spec(path: Path) -> ExperimentSpec:
     toml = read_toml(path)
     top = Section(toml, (), toml.data)
-    top.check_keys({"experiment", "data", "metrics", "factors", "segments"})
+    top.check_keys({"experiment", "data", "metrics", "factors", "segments", "sequential"})
     ex = top.sub("experiment")
     ex.check_keys(
         {
@@ -173,6 +174,11 @@ def load_spec(path: Path) -> ExperimentSpec:
     margins = _margins(met, guardrails)
     factors = _factors(top.sub("factors"), control, names) if top.has("factors") else ()
     segments = load_segments(top.sub("segments"), unit) if top.has("segments") else None
+    sequential = (
+        load_sequential(top.sub("sequential"), (decision, *guardrails, *diagnostics))
+        if top.has("sequential")
+        else None
+    )
     return ExperimentSpec(
         name=plain_name(ex, "name", ex.req_str("name")),
         description=ex.text("description", "") or "",
@@ -205,6 +211,7 @@ def load_spec(path: Path) -> ExperimentSpec:
         guardrail_margins=margins,
         factors=factors,
         segments=segments,
+        sequential=sequential,
     )
 
 

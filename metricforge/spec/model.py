@@ -139,6 +139,22 @@ class Segments:
 
 
 @dataclass(frozen=True)
+class Sequential:
+    """[sequential]: always-valid p-values and confidence sequences (stats/sequential.py).
+
+    The mixing variance of a metric is τ² = (effect · |scale|)², the scale being the
+    metric's ``baseline`` when the spec gives one (fixed before the data: the guarantee
+    holds exactly) or else the pooled value of the two compared variants at the look."""
+
+    effect: float  # the relative effect the test is most sensitive to, e.g. 0.05
+    baselines: tuple[tuple[str, float], ...] = ()  # metric -> its expected control value
+
+    def record(self) -> dict[str, object]:
+        """The settings as plain data (lock file, scorecard)."""
+        return {"effect": self.effect, "baseline": dict(self.baselines)}
+
+
+@dataclass(frozen=True)
 class ExperimentSpec:
     name: str
     path: Path
@@ -171,6 +187,7 @@ class ExperimentSpec:
     max_two_variant_share: float = 0.05  # trust check: share of exposed units in 2+ variants
     cuped: bool = False  # adjust each metric by its own pre-period value (needs pre_period_days)
     segments: Segments | None = None  # [segments]: per-segment breakdowns, or none
+    sequential: Sequential | None = None  # [sequential], or None: no always-valid section
 
     @property
     def variant_names(self) -> tuple[str, ...]:
@@ -203,6 +220,9 @@ class Plan:
     # The lock file the run compares with (None: `<spec stem>.lock.json` beside the spec).
     # A rerun points it at the manifest's copy, so today's lock file is never read.
     lock_file: Path | None = None
+    # A cut-off time (`metricforge looks`): only exposures and events with ts < as_of are
+    # read, as an analyst looking at that moment would have seen them. None: no cut-off.
+    as_of: dt.datetime | None = None
 
     def metric(self, name: str) -> MetricDef:
         for m in self.metrics:

@@ -22,6 +22,7 @@ the treatment coefficient of the least-squares fit outcome ~ 1 + variant dummies
 from __future__ import annotations
 
 import dataclasses
+import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -89,6 +90,7 @@ class CupedEffect:
     effect: Effect  # adjusted effect; value and control_value are the observed values
     variance_reduction: float  # 1 − Var(adjusted effect) / Var(unadjusted effect)
     theta: tuple[float, ...]  # slopes on (covariate, indicator)
+    variance: float = math.nan  # Var(adjusted effect): the sum of the arms' estimator variances
 
 
 def _index(names: tuple[str, ...], name: str) -> FloatArray:
@@ -265,4 +267,4 @@ def cuped_compare(
         method=cuped.method,
     )
     reduction = 1.0 - after / plain if plain > 0 else 0.0
-    return CupedEffect(effect, reduction, cuped.theta)
+    return CupedEffect(effect, reduction, cuped.theta, after)
