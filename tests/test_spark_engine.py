@@ -352,7 +352,7 @@ def test_spark_reads_only_the_window_files_and_the_needed_columns(spark_engine: 
     assert schema is not None, scan
     read = {field.split(":")[0] for field in schema.group(1).split(",")}
     needed = {"ts", "cookie_id", "session_id", "event", "value", "latency_ms", "device"}
-    assert read == needed | {"user_agent"}, read
+    assert read == needed | {"user_agent", "country"}, read  # country: a segment column
 
 
 @pytest.mark.spark
