@@ -195,8 +195,28 @@ def cuped_query(plan: Plan, table: str) -> exp.Select:
 
 
 # -- quantile metrics -------------------------------------------------------------------------
-def quantile_query(metric: MetricDef, table: str, alpha: float, *, ordered: bool) -> exp.Select:
-    """Per variant: the quantile of the event-level values and its outer confidence band.
+def value_rows(metric: MetricDef, table: str, *columns: exp.Expr) -> exp.Select:
+    """One row per value of a quantile metric (``v``) of the analysed units of ``table``
+    (its list column ``v_<metric>``), with ``columns`` of the unit."""
+    return (
+        exp.select(*columns, exp.column("v"))
+        .from_(table)
+        .join(
+            exp.Unnest(
+                expressions=[exp.column(f"v_{metric.name}")],
+                alias=exp.TableAlias(this=exp.to_identifier("t"), columns=[exp.to_identifier("v")]),
+            ),
+            join_type="cross",
+        )
+        .where(exp.and_(analysed(), exp.column("v").is_(exp.null()).not_()))
+    )
+
+
+def quantile_query(
+    metric: MetricDef, table: str, alpha: float, *, ordered: bool, z: float | None = None
+) -> exp.Select:
+    """Per variant: the quantile of the event-level values and its outer confidence band
+    (at ``z``, by default the two-sided normal quantile of ``alpha``).
 
     q_values  the analysed units' values, one row per value
     q_ranked  each value's position within its variant
@@ -207,19 +227,8 @@ def quantile_query(metric: MetricDef, table: str, alpha: float, *, ordered: bool
               ΣS/ΣM (the proportion at or below q̂ respects clustering by unit)
     (final)   the quantiles at the band's levels (the outer confidence interval)
     """
-    v, var = exp.column("v"), exp.column("variant")
-    values = (
-        exp.select(exp.column("variant"), exp.column("unit"), exp.column("v"))
-        .from_(table)
-        .join(
-            exp.Unnest(
-                expressions=[exp.column(f"v_{metric.name}")],
-                alias=exp.TableAlias(this=exp.to_identifier("t"), columns=[exp.to_identifier("v")]),
-            ),
-            join_type="cross",
-        )
-        .where(exp.and_(analysed(), v.is_(exp.null()).not_()))
-    )
+    var = exp.column("variant")
+    values = value_rows(metric, table, exp.column("variant"), exp.column("unit"))
     point = (
         exp.select(
             var.copy(),
@@ -271,7 +280,7 @@ def quantile_query(metric: MetricDef, table: str, alpha: float, *, ordered: bool
             exp.column(c, "s")
             for c in ("mean_below", "mean_count", "var_below", "var_count", "cov_below_count")
         ],
-        *_band_levels(metric.q, two_sided_z(alpha)),
+        *_band_levels(metric.q, two_sided_z(alpha) if z is None else z),
     ).from_(exp.alias_(exp.to_table("q_spread"), "s", table=True))
     band = band.join(
         exp.alias_(exp.to_table("q_point"), "p", table=True),

@@ -237,9 +237,9 @@ class _Builder:
             return parts
         if metric.kind is Kind.QUANTILE:
             parts = [exp.alias_(exp.cast(total, BIGINT), u)]
-            if not period:  # one sorted list per unit; sessions without values hold NULL
-                lists = sorted_concat(_col(f"l_{metric.name}"))
-                parts.append(exp.alias_(lists, f"l_{metric.name}"))
+            if self.plan.lists_values(period):  # one sorted list per unit (NULL: none)
+                lists = sorted_concat(_col(f"l{period}_{metric.name}"))
+                parts.append(exp.alias_(lists, f"l{period}_{metric.name}"))
             return parts
         if metric.kind is Kind.DWELL_SUCCESS:
             session: exp.Expr = _col("session")
@@ -333,7 +333,10 @@ class _Builder:
                 if y is not None:
                     select = select.select(exp.alias_(y, f"y{period}_{metric.name}"))
             if metric.kind is Kind.QUANTILE:  # the unit's values of a quantile metric
-                select = select.select(exp.alias_(_col(f"l_{metric.name}"), f"v_{metric.name}"))
+                for period in suffixes:
+                    if self.plan.lists_values(period):
+                        values = _col(f"l{period}_{metric.name}")
+                        select = select.select(exp.alias_(values, f"v{period}_{metric.name}"))
         return select.from_("stitched" if stitched else "units")
 
     # -- stage 5 -------------------------------------------------------------------------

@@ -100,9 +100,10 @@ def sessions(plan: Plan, *, ts_bounds: bool = True) -> exp.Select:
             select = select.select(exp.alias_(exp.LogicalOr(this=flag), f"bot_rule_{i}"))
     select = select.select(*session_keys(plan, e, in_window))
     for metric in plan.metrics:
-        select = select.select(*_session_parts(metric, e, "", in_window))
+        select = select.select(*_session_parts(metric, e, "", in_window, listed=True))
         for period, cond in earlier:
-            select = select.select(*_session_parts(metric, e, period, cond))
+            listed = plan.lists_values(period)
+            select = select.select(*_session_parts(metric, e, period, cond, listed=listed))
     return (
         select.from_(exp.alias_(exp.to_table("first_exposure"), f, table=True))
         .join(exp.alias_(exp.to_table("events"), e, table=True), on=join_on, join_type="left")
@@ -131,9 +132,10 @@ def _rule_flag(rule: BotRule, e: str) -> exp.Expr | None:
 
 
 def _session_parts(
-    metric: MetricDef, e: str, period: str, period_cond: exp.Expr | None
+    metric: MetricDef, e: str, period: str, period_cond: exp.Expr | None, *, listed: bool
 ) -> list[exp.Expr]:
-    """A metric's session-level columns for one period ("" = experiment, "pre")."""
+    """A metric's session-level columns for one period ("" = experiment, "pre");
+    ``listed``: a quantile metric's values are listed too (``Plan.lists_values``)."""
     s = f"s{period}_{metric.name}"
     cond = _and(
         _event_condition(metric, e), period_cond.copy() if period_cond is not None else None
@@ -156,15 +158,16 @@ def _session_parts(
         return parts
     if metric.kind is Kind.DWELL_SUCCESS:
         return [exp.alias_(_dwell_success(metric, e, period_cond), s)]
-    if metric.kind is Kind.QUANTILE:  # the number of values and, in the experiment
-        assert metric.value is not None  # period, their list
+    if metric.kind is Kind.QUANTILE:  # the number of values and, when listed, their list
+        assert metric.value is not None
         listed_value = qualify(metric.value, e)
         has = _and(cond, listed_value.is_(exp.null()).not_())
         parts = [exp.alias_(exp.Count(this=_case(has, _lit(1))), s)]
-        if not period:
-            listed = exp.ArrayAgg(this=exp.cast(listed_value.copy(), DOUBLE))
+        if listed:
+            values = exp.ArrayAgg(this=exp.cast(listed_value.copy(), DOUBLE))
             where = exp.Where(this=has.copy())
-            parts.append(exp.alias_(exp.Filter(this=listed, expression=where), f"l_{metric.name}"))
+            column = f"l{period}_{metric.name}"
+            parts.append(exp.alias_(exp.Filter(this=values, expression=where), column))
         return parts
     return []  # ratio and composite are built from other metrics' per-unit columns
 

@@ -84,8 +84,8 @@ def _merged_metric(plan: Plan, name: str, period: str, ordered: bool) -> list[ex
         return [exp.alias_(case(n > exp.Literal.number(0), mean), u)]
     if metric.kind is Kind.QUANTILE:  # the counts add; the sorted value lists merge
         parts = [exp.alias_(count(u), u)]
-        if not period:
-            values = f"l_{name}"
+        if plan.lists_values(period):
+            values = f"l{period}_{name}"
             parts.append(exp.alias_(sorted_concat(col(values, i)), values))
         return parts
     if metric.kind is Kind.DWELL_SUCCESS:

@@ -223,6 +223,15 @@ class Plan:
     # A cut-off time (`metricforge looks`): only exposures and events with ts < as_of are
     # read, as an analyst looking at that moment would have seen them. None: no cut-off.
     as_of: dt.datetime | None = None
+    # A/A replay of the pre-period only (needs pre_period_days > 0): `unit_rows` also holds
+    # every quantile metric's pre-period values (`vpre_<name>`), as `v_<name>` holds the
+    # experiment period's.
+    pre_values: bool = False
+
+    def lists_values(self, period: str) -> bool:
+        """Whether ``unit_rows`` holds a quantile metric's list of values for ``period``
+        ("" the experiment, "pre" the pre-period)."""
+        return not period or (period == "pre" and self.pre_values)
 
     def metric(self, name: str) -> MetricDef:
         for m in self.metrics:
