@@ -24,6 +24,7 @@ from metricforge.stats.contrasts import ContrastResult, combine
 from metricforge.stats.dist import norm_ppf, norm_sf
 from metricforge.stats.effects import (
     Effect,
+    EffectBatch,
     check_hypothesis,
     evidence_sign,
     margin_factor,
@@ -59,13 +60,24 @@ class QuantileSummary:
         return self.below.n
 
 
-def rank_band(below: Moments, q: float, alpha: float) -> tuple[float, float]:
-    """The levels q ∓ z·σ, clipped to [0, 1], of the outer confidence interval."""
+def _check_level(q: float) -> None:
     if not 0.0 < q < 1.0:
         raise StatsError(f"the quantile's level must lie strictly between 0 and 1, is {q}")
+
+
+def rank_band(below: Moments, q: float, alpha: float) -> tuple[float, float]:
+    """The levels q ∓ z·σ, clipped to [0, 1], of the outer confidence interval."""
+    _check_level(q)
     _, variance = ratio_point_and_variance(below)
-    half = two_sided_z(alpha) * math.sqrt(variance)
-    return max(q - half, 0.0), min(q + half, 1.0)
+    low, high = rank_bands(np.array([variance]), q, alpha)
+    return float(low[0]), float(high[0])
+
+
+def rank_bands(variance: FloatArray, q: float, alpha: float) -> tuple[FloatArray, FloatArray]:
+    """``rank_band`` for many delta-method variances of ΣS/ΣM at once."""
+    _check_level(q)
+    half = two_sided_z(alpha) * np.sqrt(variance)
+    return np.maximum(q - half, 0.0), np.minimum(q + half, 1.0)
 
 
 def quantile_se(summary: QuantileSummary, q: float, alpha: float) -> float:
@@ -107,37 +119,67 @@ def quantile_compare(
     check_hypothesis(side, margin)
     se_t = quantile_se(treatment, q, alpha)
     se_c = quantile_se(control, q, alpha)
-    z = two_sided_z(alpha)
-    t, c = treatment.quantile, control.quantile
-    diff = t - c
-    half = z * math.hypot(se_t, se_c)
-    k = float(margin_factor(np.array(c), side, margin))  # the tested contrast is t − k·c
-    contrast = t - k * c
-    se = math.hypot(se_t, k * se_c)
-    sign = evidence_sign(side, margin)
-    if se == 0:  # no spread in either variant: the contrast is known exactly
-        known = contrast == 0 if side == 0 else sign * contrast <= 0
-        p = 1.0 if known else 0.0
-    elif side == 0:
-        p = 2.0 * float(norm_sf(abs(contrast) / se))
-    else:
-        p = float(norm_sf(sign * contrast / se))
 
     def one(v: float) -> FloatArray:
         return np.array([v], np.float64)
 
-    return with_relative(
-        one(t),
-        one(se_t * se_t),
-        one(c),
-        one(se_c * se_c),
-        z,
-        diff=one(diff),
-        low=one(diff - half),
-        high=one(diff + half),
-        p=one(p),
-        method=np.array([METHOD]),
+    return compare_quantiles(
+        one(treatment.quantile),
+        one(se_t),
+        one(control.quantile),
+        one(se_c),
+        alpha=alpha,
+        side=side,
+        margin=margin,
     ).item()
+
+
+def _hypot(a: FloatArray, b: FloatArray | float) -> FloatArray:
+    """Python's ``math.hypot`` element by element: numpy's hypot can differ from it in the
+    last bit, and the scorecard's figures must not move."""
+    with np.errstate(invalid="ignore"):  # NaN in, NaN out
+        out: FloatArray = np.vectorize(math.hypot, otypes=[np.float64])(a, b)
+    return out
+
+
+def compare_quantiles(
+    t: FloatArray,
+    se_t: FloatArray,
+    c: FloatArray,
+    se_c: FloatArray,
+    *,
+    alpha: float = 0.05,
+    side: int = 0,
+    margin: float | None = None,
+) -> EffectBatch:
+    """``quantile_compare`` on arrays of quantiles and their standard errors (one element
+    per compared pair, e.g. per A/A replay); NaN standard errors give NaN effects."""
+    check_hypothesis(side, margin)
+    z = two_sided_z(alpha)
+    diff = t - c
+    half = z * _hypot(se_t, se_c)
+    k = margin_factor(c, side, margin)  # the tested contrast is t − k·c
+    contrast = t - k * c
+    se = _hypot(se_t, k * se_c)
+    sign = evidence_sign(side, margin)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        statistic = contrast / se
+    p = 2.0 * norm_sf(np.abs(statistic)) if side == 0 else norm_sf(sign * statistic)
+    # no spread in either variant: the contrast is known exactly
+    known = contrast == 0 if side == 0 else sign * contrast <= 0
+    p = np.where(se == 0, np.where(known, 1.0, 0.0), p)
+    return with_relative(
+        t,
+        se_t * se_t,
+        c,
+        se_c * se_c,
+        z,
+        diff=diff,
+        low=diff - half,
+        high=diff + half,
+        p=p,
+        method=np.full(len(t), METHOD),
+    )
 
 
 def quantile_contrast(
