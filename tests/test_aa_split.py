@@ -25,6 +25,7 @@ from metricforge.checks.aa import (
     Period,
     bucket_arrays,
     compiled_replay,
+    quantile_arrays,
     replay_p_values,
 )
 from metricforge.cli import app
@@ -66,8 +67,12 @@ def replay_and_card(
     spec = plan.spec
     inputs, _ = gather_inputs(plan)
     run = compiled_replay(plan, Period.EXPERIMENT, "duckdb")
-    buckets, _ = bucket_arrays(plan, DuckDBEngine().run(run, inputs)["buckets"], Period.EXPERIMENT)
-    replayed = replay_p_values(plan, BucketSplitter(buckets), REPLAY, 1, seed=SEED)
+    tables = DuckDBEngine().run(run, inputs)
+    buckets, _ = bucket_arrays(plan, tables["buckets"], Period.EXPERIMENT)
+    quantiles = quantile_arrays(plan, tables)
+    replayed = replay_p_values(
+        plan, BucketSplitter(buckets), REPLAY, 1, seed=SEED, quantiles=quantiles
+    )
     salt = f"metricforge-aa|{spec.name}|{SEED}"
     arms = assign(bucket_hashes(salt, REPLAY, 1, N_BUCKETS), [s for _, s in spec.variants])[0]
     exposures = split_exposures(folder, spec.name, list(spec.variant_names), arms)
@@ -81,15 +86,13 @@ def replay_and_card(
 @pytest.mark.slow
 def test_a_replay_p_value_is_the_scorecard_p_value_of_its_split(tmp_path: Path) -> None:
     replayed, rows = replay_and_card(tmp_path, "checkout_layout")
+    assert {row["metric"] for row in rows} == set(replayed)
     for row in rows:
-        if row["metric"] not in replayed:
-            assert row["kind"] == "quantile"
-            continue
         expected = replayed[row["metric"]][row["variant"]][0]
         assert row["p_value"] == pytest.approx(expected, rel=1e-8, abs=1e-12), row["metric"]
     # every kind of test took part
     methods = {r["metric"]: r["method"] for r in rows}
-    assert {"welch+cuped", "delta+cuped"} <= set(methods.values())
+    assert {"welch+cuped", "delta+cuped", "outer-ci"} <= set(methods.values())
     assert methods["buyer_share"] == "welch+cuped"  # a proportion, CUPED-adjusted
     hypotheses = {r["hypothesis"].split(":")[0] for r in rows}
     assert {"two-sided", "one-sided harm"} <= hypotheses
@@ -102,27 +105,31 @@ def test_a_replay_of_proportions_without_cuped_is_the_scorecard_p_value(tmp_path
     """homepage_aa has no CUPED: its proportion is tested by z (or Fisher) in both."""
     replayed, rows = replay_and_card(tmp_path, "homepage_aa")
     methods = set()
+    assert {row["metric"] for row in rows} == set(replayed)
     for row in rows:
-        if row["metric"] in replayed:
-            expected = replayed[row["metric"]][row["variant"]][0]
-            assert row["p_value"] == pytest.approx(expected, rel=1e-8, abs=1e-12), row["metric"]
-            methods.add(row["method"])
-    assert {"welch", "delta", "newcombe+z"} <= methods
+        expected = replayed[row["metric"]][row["variant"]][0]
+        assert row["p_value"] == pytest.approx(expected, rel=1e-8, abs=1e-12), row["metric"]
+        methods.add(row["method"])
+    assert {"welch", "delta", "newcombe+z", "outer-ci"} <= methods
 
 
-def test_the_report_names_what_it_replays_and_what_it_cannot() -> None:
+def test_the_report_names_what_it_replays_and_how() -> None:
     report = aa_json("checkout_layout.toml", "--replays", "40", "--period", "experiment")
     rows = {r["metric"]: r for r in report["rows"]}
     assert rows["page_latency"]["margin"] == 0.02
     assert rows["page_latency"]["verdict"] == NOT_JUDGED
     assert rows["unsubscribes"]["hypothesis"].startswith("one-sided harm")
-    assert {r["statistic"] for r in rows.values()} == {"cuped-adjusted"}
-    assert [s["metric"] for s in report["skipped"]] == ["page_latency_p95"]
+    statistics = {name: r["statistic"] for name, r in rows.items()}
+    assert statistics.pop("page_latency_p95") == "outer-ci"
+    assert set(statistics.values()) == {"cuped-adjusted"}
+    assert report["skipped"] == []
     assert any(n.startswith("CUPED: metrics are replayed adjusted") for n in report["notes"])
+    assert any(n.startswith("quantile metrics are replayed") for n in report["notes"])
     report = aa_json("checkout_layout.toml", "--replays", "40")
-    assert {r["statistic"] for r in report["rows"]} == {"unadjusted"}
+    assert {r["statistic"] for r in report["rows"]} == {"unadjusted", "outer-ci"}
     assert any("checks the unadjusted variance" in n for n in report["notes"])
     shown = CliRunner().invoke(
         app, ["aa", str(PIPELINES / "checkout_layout.toml"), "--replays", "40"]
     )
-    assert "page_latency_p95 (guardrail): not replayable" in shown.stdout
+    assert "page_latency_p95" in shown.stdout
+    assert "not replayable" not in shown.stdout

@@ -16,13 +16,18 @@ a valid random split of the units.
 days as the analysis window when it sets none), where no treatment acted; ``experiment``
 replays the experiment period itself (any real effect is spread over both arms). CUPED
 metrics are replayed adjusted in the experiment period; in the pre-period, which has no
-earlier period to adjust by, they are replayed unadjusted (the report says so). Quantile
-metrics are not replayable from bucket moments and are listed as such.
+earlier period to adjust by, they are replayed unadjusted (the report says so).
+
+A quantile metric is not a merge of per-unit moments: its buckets keep instead the exact
+values in a wide window about the pooled quantile (``compile.replay_quantiles``), from
+which each replay rebuilds every variant's quantile, outer band and p-value
+(``stats.replay_quantiles``).
 """
 
 from __future__ import annotations
 
 import dataclasses
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from enum import StrEnum
 from typing import Any
@@ -38,7 +43,9 @@ from metricforge.compile.checks import (
     replay_variables,
     replayable,
 )
+from metricforge.compile.extras import reported
 from metricforge.compile.query import CompiledRun, compile_unit_rows
+from metricforge.compile.replay_quantiles import quantile_replay, quantile_replay_name
 from metricforge.data_errors import run_naming_failures
 from metricforge.engines.base import Engine
 from metricforge.errors import StatsError
@@ -47,6 +54,7 @@ from metricforge.runner import gather_inputs
 from metricforge.spec.model import Kind, Plan
 from metricforge.stats.calibration import Calibration, calibration
 from metricforge.stats.cuped import PER_UNIT, RATIO
+from metricforge.stats.quantiles import METHOD as QUANTILE_METHOD
 from metricforge.stats.replay import (
     BucketMoments,
     BucketSplitter,
@@ -54,6 +62,7 @@ from metricforge.stats.replay import (
     bucket_hashes,
     p_values,
 )
+from metricforge.stats.replay_quantiles import QuantileBuckets, quantile_p_values
 
 N_BUCKETS = 16**BUCKET_DIGITS
 CHUNK = 256  # replays per block: bounds memory at CHUNK × buckets numbers per array
@@ -102,7 +111,8 @@ def replay_plan(plan: Plan, period: Period) -> Plan:
     if period is Period.EXPERIMENT:
         return plan
     days = plan.spec.pre_period_days or plan.spec.window_days
-    return dataclasses.replace(plan, pre_period_days=days)
+    lists = any(m.kind is Kind.QUANTILE for m in reported(plan))
+    return dataclasses.replace(plan, pre_period_days=days, pre_values=lists)
 
 
 def compiled_replay(plan: Plan, period: Period, dialect: str) -> CompiledRun:
@@ -111,7 +121,14 @@ def compiled_replay(plan: Plan, period: Period, dialect: str) -> CompiledRun:
     # all the replays; a bucket's few floats may then add up in another order, so figures
     # can differ in their last bits between runs (see ReplayReport.as_json).
     query = bucket_moments(plan, _prefix(period), ordered=False)
-    return CompiledRun(unit_rows=compile_unit_rows(plan, dialect), results=(("buckets", query),))
+    quantiles = [
+        (quantile_replay_name(m), quantile_replay(plan, m, _prefix(period)))
+        for m in reported(plan)
+        if m.kind is Kind.QUANTILE
+    ]
+    return CompiledRun(
+        unit_rows=compile_unit_rows(plan, dialect), results=(("buckets", query), *quantiles)
+    )
 
 
 def _prefix(period: Period) -> str:
@@ -148,6 +165,15 @@ def bucket_arrays(
     return metrics, int(sum(table.column("n_units").to_pylist()))
 
 
+def quantile_arrays(plan: Plan, tables: dict[str, pa.Table]) -> dict[str, QuantileBuckets]:
+    """Every quantile metric's window of values per bucket (``qreplay_<metric>``)."""
+    return {
+        m.name: QuantileBuckets.of(tables[quantile_replay_name(m)].to_pydict(), N_BUCKETS)
+        for m in reported(plan)
+        if m.kind is Kind.QUANTILE
+    }
+
+
 def replay_p_values(
     plan: Plan,
     splitter: BucketSplitter,
@@ -156,9 +182,11 @@ def replay_p_values(
     *,
     seed: int,
     independent_events: frozenset[str] = frozenset(),
+    quantiles: Mapping[str, QuantileBuckets] | None = None,
 ) -> dict[str, dict[str, np.ndarray[Any, np.dtype[np.float64]]]]:
     """Per metric and treatment variant, the p-values of replays first..first+count-1,
-    each as the scorecard computes it for that split (``stats.replay.p_values``)."""
+    each as the scorecard computes it for that split (``stats.replay.p_values``; quantile
+    metrics: ``stats.replay_quantiles.quantile_p_values``)."""
     spec = plan.spec
     salt = f"metricforge-aa|{spec.name}|{seed}"
     shares = [s for _, s in spec.variants]
@@ -179,6 +207,20 @@ def replay_p_values(
             independent_events=name in independent_events,
         )
         out[name] = dict(zip(spec.variant_names[1:], p, strict=True))
+    for name, window in (quantiles or {}).items():
+        metric = plan.metric(name)
+        side, _ = hypothesis(metric, roles[name], margins.get(name))
+        assert metric.q is not None
+        p = quantile_p_values(
+            window,
+            arms,
+            len(shares),
+            q=metric.q,
+            alpha=spec.alpha,
+            side=side,
+            margin=margins.get(name),
+        )
+        out[name] = dict(zip(spec.variant_names[1:], p, strict=True))
     return out
 
 
@@ -189,6 +231,7 @@ def replay(
     replays: int,
     seed: int,
     independent_events: frozenset[str] = frozenset(),
+    quantiles: Mapping[str, QuantileBuckets] | None = None,
 ) -> dict[str, dict[str, Calibration]]:
     """Per metric and treatment variant, the calibration of its p-values over ``replays``.
 
@@ -201,20 +244,29 @@ def replay(
     splitter = BucketSplitter(buckets)
     treatments = plan.spec.variant_names[1:]
     p: dict[str, dict[str, list[np.ndarray[Any, Any]]]] = {
-        m: {v: [] for v in treatments} for m in buckets
+        m: {v: [] for v in treatments} for m in [*buckets, *(quantiles or {})]
     }
     for first in range(0, replays, CHUNK):
         count = min(CHUNK, replays - first)
         found = replay_p_values(
-            plan, splitter, first, count, seed=seed, independent_events=independent_events
+            plan,
+            splitter,
+            first,
+            count,
+            seed=seed,
+            independent_events=independent_events,
+            quantiles=quantiles,
         )
         for name, by_variant in found.items():
             for variant, values in by_variant.items():
                 p[name][variant].append(values)
-    return {
-        name: {v: calibration(np.concatenate(chunks), plan.spec.alpha) for v, chunks in by.items()}
-        for name, by in p.items()
-    }
+    out: dict[str, dict[str, Calibration]] = {}
+    for name, by in p.items():
+        gathered = {v: np.concatenate(chunks) for v, chunks in by.items()}
+        if any(np.isfinite(values).sum() < 2 for values in gathered.values()):
+            continue  # e.g. a quantile's window missed in (nearly) every replay: reported
+        out[name] = {v: calibration(values, plan.spec.alpha) for v, values in gathered.items()}
+    return out
 
 
 def notes(plan: Plan, period: Period) -> list[str]:
@@ -244,6 +296,13 @@ def notes(plan: Plan, period: Period) -> list[str]:
             " per-unit values, as the scorecard caps them (the cap does not depend on the"
             " split)"
         )
+    if any(m.kind is Kind.QUANTILE for m in reported(plan)):
+        out.append(
+            "quantile metrics are replayed from their exact values in a wide window about the"
+            " pooled quantile, as the scorecard tests them (outer interval, clustered by"
+            " unit); a replay whose quantiles fall outside the window has no p-value and is"
+            " not counted in the row's replays"
+        )
     return out
 
 
@@ -265,18 +324,30 @@ def run_aa(
     scan_plan = replay_plan(plan, period)
     inputs, _ = gather_inputs(scan_plan)
     compiled = compiled_replay(scan_plan, period, engine.dialect)
-    table = run_naming_failures(scan_plan, engine, compiled, inputs)["buckets"]
+    tables = run_naming_failures(scan_plan, engine, compiled, inputs)
+    table = tables["buckets"]
     if table.num_rows == 0:
         raise StatsError(f"experiment '{plan.spec.name}' has no analysed units to replay")
     buckets, units = bucket_arrays(plan, table, period)
+    quantiles = quantile_arrays(plan, tables)
     results = replay(
-        plan, buckets, replays=replays, seed=seed, independent_events=independent_events
+        plan,
+        buckets,
+        replays=replays,
+        seed=seed,
+        independent_events=independent_events,
+        quantiles=quantiles,
     )
     rows, skipped = [], []
     margins = dict(plan.spec.guardrail_margins)
     for name, role in plan.reported:
         if name not in results:
-            reason = "not replayable: a quantile is not a merge of per-unit moments"
+            reason = "no verdict: fewer than two replays gave it a p-value"
+            if name in quantiles:
+                reason += (
+                    " (its quantiles fell outside the window of values kept about the"
+                    " pooled quantile)"
+                )
             skipped.append({"metric": name, "role": role.value, "reason": reason})
             continue
         margin = margins.get(name)
@@ -289,7 +360,9 @@ def run_aa(
                     "variant": variant,
                     "hypothesis": tested,
                     "margin": margin,
-                    "statistic": statistic(buckets[name].names),
+                    "statistic": QUANTILE_METHOD
+                    if name in quantiles
+                    else statistic(buckets[name].names),
                     **dataclasses.asdict(cal),
                     "verdict": cal.verdict.value if margin is None else NOT_JUDGED,
                 }
