@@ -7,6 +7,9 @@ from rich.table import Table
 
 from metricforge.checks.aa import Period, ReplayReport
 
+# What the test column adds to the hypothesis for each replayed statistic.
+STATISTIC_SHOWN = {"unadjusted": "", "cuped-adjusted": ", cuped", "outer-ci": ", outer CI"}
+
 
 def render_replay(report: ReplayReport, console: Console) -> None:
     period = (
@@ -34,7 +37,7 @@ def render_replay(report: ReplayReport, console: Console) -> None:
         table.add_row(
             r["metric"],
             r["role"],
-            r["hypothesis"].split(":")[0] + ("" if r["statistic"] == "unadjusted" else ", cuped"),
+            r["hypothesis"].split(":")[0] + STATISTIC_SHOWN.get(r["statistic"], ""),
             r["variant"],
             f"{r['share']:.3f}",
             f"{r['ci_low']:.3f}–{r['ci_high']:.3f}",
