@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import sqlglot.expressions as exp
 
+from metricforge.compile.sqlparts import case
 from metricforge.spec.model import Kind, MetricDef, Plan
 
 DUPLICATE_EXPOSURES = "dq_duplicate_exposures"
@@ -52,14 +53,27 @@ def exact(value: exp.Expr) -> exp.Expr:
 
 
 def value_checks(cond: exp.Expr, value: exp.Expr, metric: MetricDef) -> list[tuple[str, exp.Expr]]:
-    """Session-level counts of ignored and negative values: (column, condition)."""
-    wrapped = exp.paren(value.copy())
-    used = exact(value).is_(exp.null()).not_()
-    ignored = exp.and_(cond.copy(), wrapped.is_(exp.null()).not_(), exact(value).is_(exp.null()))
-    negative = exp.and_(cond.copy(), used, wrapped.copy() < exp.Literal.number(0))
+    """Session-level counts of ignored and negative values: (column, aggregate).
+
+    Both are written around the metric's own ``CASE WHEN cond THEN exact(value) END``,
+    the expression its sum already aggregates, so the engine converts each value once
+    (DuckDB shares identical expressions): ignored = matching non-NULL values minus the
+    used ones; negative = used values below zero, the cheap comparison tested first.
+    """
+    used_value = case(cond, exact(value))
+    raw_value = case(cond, value)
+    ignored = exp.Sub(this=exp.Count(this=raw_value), expression=exp.Count(this=used_value.copy()))
+    negative = case(
+        exp.and_(
+            cond.copy(),
+            exp.paren(value.copy()) < exp.Literal.number(0),
+            used_value.copy().is_(exp.null()).not_(),
+        ),
+        exp.Literal.number(1),
+    )
     return [
         (ignored_column(metric.name), ignored),
-        (negative_column(metric.name), negative),
+        (negative_column(metric.name), exp.Count(this=negative)),
     ]
 
 

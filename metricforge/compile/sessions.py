@@ -19,7 +19,7 @@ import sqlglot.expressions as exp
 from metricforge.compile.expressions import qualify
 from metricforge.compile.quality import exact, value_checks
 from metricforge.compile.segments import session_keys
-from metricforge.compile.sqlparts import DOUBLE, timestamp
+from metricforge.compile.sqlparts import DOUBLE, one_of, timestamp
 from metricforge.compile.sqlparts import all_of as _and
 from metricforge.compile.sqlparts import case as _case
 from metricforge.compile.sqlparts import col as _col
@@ -116,7 +116,7 @@ def _event_condition(metric: MetricDef, events: str) -> exp.Expr:
     # could hold on it (no event types; `where = "device IS NULL"`) must not count it.
     kinds: exp.Expr = _col("ts", events).is_(exp.null()).not_()
     if metric.events:
-        kinds = _col("event", events).isin(*[_lit(e) for e in metric.events])
+        kinds = one_of(_col("event", events), list(metric.events))
     where = exp.paren(qualify(metric.where, events)) if metric.where is not None else None
     return _and(kinds, where)
 
@@ -151,10 +151,7 @@ def _session_parts(
         if metric.kind is Kind.MEAN:
             parts.append(exp.alias_(exp.Count(this=value.copy()), f"c{period}_{metric.name}"))
         if not period:
-            parts += [
-                exp.alias_(exp.Count(this=_case(check, _lit(1))), name)
-                for name, check in value_checks(cond, raw, metric)
-            ]
+            parts += [exp.alias_(count, name) for name, count in value_checks(cond, raw, metric)]
         return parts
     if metric.kind is Kind.DWELL_SUCCESS:
         return [exp.alias_(_dwell_success(metric, e, period_cond), s)]
@@ -178,9 +175,9 @@ def _dwell_success(metric: MetricDef, e: str, period_cond: exp.Expr | None) -> e
 
     def times(event: str) -> tuple[exp.Expr, exp.Expr]:
         cond = _and(
-            # IN, as a count metric's event condition: the engine then computes a count of
-            # clicks that a metric also uses once (identical aggregates are shared)
-            _col("event", e).isin(_lit(event)),
+            # written as a count metric's event condition: the engine then computes a count
+            # of clicks that a metric also uses once (identical aggregates are shared)
+            one_of(_col("event", e), [event]),
             where.copy() if where is not None else None,
             period_cond.copy() if period_cond is not None else None,
         )

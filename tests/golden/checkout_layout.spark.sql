@@ -64,85 +64,79 @@ WITH first_exposure AS (
     ) AS segkey_country,
     SUM(
       CASE
-        WHEN e.event IN ('purchase') AND e.ts >= f.first_ts
+        WHEN e.event = 'purchase' AND e.ts >= f.first_ts
         THEN CAST(e.value AS DECIMAL(28, 10))
       END
     ) AS s_revenue,
-    COUNT(
+    COUNT(CASE WHEN e.event = 'purchase' AND e.ts >= f.first_ts THEN e.value END) - COUNT(
       CASE
-        WHEN (
-          e.event IN ('purchase') AND e.ts >= f.first_ts
-        )
-        AND NOT (
-          e.value
-        ) IS NULL
-        AND CAST(e.value AS DECIMAL(28, 10)) IS NULL
-        THEN 1
+        WHEN e.event = 'purchase' AND e.ts >= f.first_ts
+        THEN CAST(e.value AS DECIMAL(28, 10))
       END
     ) AS dq_ignored_revenue,
     COUNT(
       CASE
         WHEN (
-          e.event IN ('purchase') AND e.ts >= f.first_ts
+          e.event = 'purchase' AND e.ts >= f.first_ts
         )
-        AND NOT CAST(e.value AS DECIMAL(28, 10)) IS NULL
         AND (
           e.value
         ) < 0
+        AND NOT CASE
+          WHEN e.event = 'purchase' AND e.ts >= f.first_ts
+          THEN CAST(e.value AS DECIMAL(28, 10))
+        END IS NULL
         THEN 1
       END
     ) AS dq_negative_revenue,
     SUM(
       CASE
-        WHEN e.event IN ('purchase') AND NOT (
+        WHEN e.event = 'purchase' AND NOT (
           e.ts >= f.first_ts
         )
         THEN CAST(e.value AS DECIMAL(28, 10))
       END
     ) AS spre_revenue,
-    COUNT(CASE WHEN e.event IN ('unsubscribe') AND e.ts >= f.first_ts THEN 1 END) AS s_unsubscribes,
-    COUNT(CASE WHEN e.event IN ('unsubscribe') AND NOT (
+    COUNT(CASE WHEN e.event = 'unsubscribe' AND e.ts >= f.first_ts THEN 1 END) AS s_unsubscribes,
+    COUNT(CASE WHEN e.event = 'unsubscribe' AND NOT (
       e.ts >= f.first_ts
     ) THEN 1 END) AS spre_unsubscribes,
     SUM(
       CASE
-        WHEN e.event IN ('page_load') AND e.ts >= f.first_ts
+        WHEN e.event = 'page_load' AND e.ts >= f.first_ts
         THEN CAST(e.latency_ms AS DECIMAL(28, 10))
       END
     ) AS s_page_latency,
     COUNT(
       CASE
-        WHEN e.event IN ('page_load') AND e.ts >= f.first_ts
+        WHEN e.event = 'page_load' AND e.ts >= f.first_ts
         THEN CAST(e.latency_ms AS DECIMAL(28, 10))
       END
     ) AS c_page_latency,
-    COUNT(
+    COUNT(CASE WHEN e.event = 'page_load' AND e.ts >= f.first_ts THEN e.latency_ms END) - COUNT(
       CASE
-        WHEN (
-          e.event IN ('page_load') AND e.ts >= f.first_ts
-        )
-        AND NOT (
-          e.latency_ms
-        ) IS NULL
-        AND CAST(e.latency_ms AS DECIMAL(28, 10)) IS NULL
-        THEN 1
+        WHEN e.event = 'page_load' AND e.ts >= f.first_ts
+        THEN CAST(e.latency_ms AS DECIMAL(28, 10))
       END
     ) AS dq_ignored_page_latency,
     COUNT(
       CASE
         WHEN (
-          e.event IN ('page_load') AND e.ts >= f.first_ts
+          e.event = 'page_load' AND e.ts >= f.first_ts
         )
-        AND NOT CAST(e.latency_ms AS DECIMAL(28, 10)) IS NULL
         AND (
           e.latency_ms
         ) < 0
+        AND NOT CASE
+          WHEN e.event = 'page_load' AND e.ts >= f.first_ts
+          THEN CAST(e.latency_ms AS DECIMAL(28, 10))
+        END IS NULL
         THEN 1
       END
     ) AS dq_negative_page_latency,
     SUM(
       CASE
-        WHEN e.event IN ('page_load') AND NOT (
+        WHEN e.event = 'page_load' AND NOT (
           e.ts >= f.first_ts
         )
         THEN CAST(e.latency_ms AS DECIMAL(28, 10))
@@ -150,7 +144,7 @@ WITH first_exposure AS (
     ) AS spre_page_latency,
     COUNT(
       CASE
-        WHEN e.event IN ('page_load') AND NOT (
+        WHEN e.event = 'page_load' AND NOT (
           e.ts >= f.first_ts
         )
         THEN CAST(e.latency_ms AS DECIMAL(28, 10))
@@ -159,21 +153,19 @@ WITH first_exposure AS (
     COUNT(
       CASE
         WHEN (
-          e.event IN ('page_load') AND e.ts >= f.first_ts
-        )
-        AND NOT e.latency_ms IS NULL
+          e.event = 'page_load' AND e.ts >= f.first_ts
+        ) AND NOT e.latency_ms IS NULL
         THEN 1
       END
     ) AS s_page_latency_p95,
     COLLECT_LIST(CAST(e.latency_ms AS DOUBLE)) FILTER(WHERE
       (
-        e.event IN ('page_load') AND e.ts >= f.first_ts
-      )
-      AND NOT e.latency_ms IS NULL) AS l_page_latency_p95,
+        e.event = 'page_load' AND e.ts >= f.first_ts
+      ) AND NOT e.latency_ms IS NULL) AS l_page_latency_p95,
     COUNT(
       CASE
         WHEN (
-          e.event IN ('page_load') AND NOT (
+          e.event = 'page_load' AND NOT (
             e.ts >= f.first_ts
           )
         )
@@ -181,22 +173,22 @@ WITH first_exposure AS (
         THEN 1
       END
     ) AS spre_page_latency_p95,
-    COUNT(CASE WHEN e.event IN ('purchase') AND e.ts >= f.first_ts THEN 1 END) AS s_purchases,
-    COUNT(CASE WHEN e.event IN ('purchase') AND NOT (
+    COUNT(CASE WHEN e.event = 'purchase' AND e.ts >= f.first_ts THEN 1 END) AS s_purchases,
+    COUNT(CASE WHEN e.event = 'purchase' AND NOT (
       e.ts >= f.first_ts
     ) THEN 1 END) AS spre_purchases,
-    COUNT(CASE WHEN e.event IN ('refund') AND e.ts >= f.first_ts THEN 1 END) AS s_refunds,
-    COUNT(CASE WHEN e.event IN ('refund') AND NOT (
+    COUNT(CASE WHEN e.event = 'refund' AND e.ts >= f.first_ts THEN 1 END) AS s_refunds,
+    COUNT(CASE WHEN e.event = 'refund' AND NOT (
       e.ts >= f.first_ts
     ) THEN 1 END) AS spre_refunds,
-    COUNT(CASE WHEN e.event IN ('purchase') AND e.ts >= f.first_ts THEN 1 END) AS s_buyer_share,
-    COUNT(CASE WHEN e.event IN ('purchase') AND NOT (
+    COUNT(CASE WHEN e.event = 'purchase' AND e.ts >= f.first_ts THEN 1 END) AS s_buyer_share,
+    COUNT(CASE WHEN e.event = 'purchase' AND NOT (
       e.ts >= f.first_ts
     ) THEN 1 END) AS spre_buyer_share,
     COUNT(
       CASE
         WHEN (
-          e.event IN ('purchase') AND (
+          e.event = 'purchase' AND (
             e.device = 'mobile'
           )
         )
@@ -207,7 +199,7 @@ WITH first_exposure AS (
     COUNT(
       CASE
         WHEN (
-          e.event IN ('purchase') AND (
+          e.event = 'purchase' AND (
             e.device = 'mobile'
           )
         )
@@ -217,27 +209,27 @@ WITH first_exposure AS (
         THEN 1
       END
     ) AS spre_mobile_purchases,
-    COUNT(CASE WHEN e.event IN ('click') AND e.ts >= f.first_ts THEN 1 END) AS s_clicks,
-    COUNT(CASE WHEN e.event IN ('click') AND NOT (
+    COUNT(CASE WHEN e.event = 'click' AND e.ts >= f.first_ts THEN 1 END) AS s_clicks,
+    COUNT(CASE WHEN e.event = 'click' AND NOT (
       e.ts >= f.first_ts
     ) THEN 1 END) AS spre_clicks,
-    COUNT(CASE WHEN e.event IN ('impression') AND e.ts >= f.first_ts THEN 1 END) AS s_impressions,
-    COUNT(CASE WHEN e.event IN ('impression') AND NOT (
+    COUNT(CASE WHEN e.event = 'impression' AND e.ts >= f.first_ts THEN 1 END) AS s_impressions,
+    COUNT(CASE WHEN e.event = 'impression' AND NOT (
       e.ts >= f.first_ts
     ) THEN 1 END) AS spre_impressions,
     CASE
-      WHEN COUNT(CASE WHEN e.event IN ('click') AND e.ts >= f.first_ts THEN 1 END) = 0
+      WHEN COUNT(CASE WHEN e.event = 'click' AND e.ts >= f.first_ts THEN 1 END) = 0
       THEN 0
-      WHEN COUNT(CASE WHEN e.event IN ('back') AND e.ts >= f.first_ts THEN 1 END) = 0
+      WHEN COUNT(CASE WHEN e.event = 'back' AND e.ts >= f.first_ts THEN 1 END) = 0
       THEN 1
       WHEN SIZE(
         FILTER(
           COLLECT_LIST(UNIX_MILLIS(e.ts)) FILTER(WHERE
-            e.event IN ('click') AND e.ts >= f.first_ts),
+            e.event = 'click' AND e.ts >= f.first_ts),
           c -> SIZE(
             FILTER(
               COLLECT_LIST(UNIX_MILLIS(e.ts)) FILTER(WHERE
-                e.event IN ('back') AND e.ts >= f.first_ts),
+                e.event = 'back' AND e.ts >= f.first_ts),
               b -> b > c AND b <= (
                 c + 30000
               )
@@ -249,24 +241,24 @@ WITH first_exposure AS (
       ELSE 0
     END AS s_session_success,
     CASE
-      WHEN COUNT(CASE WHEN e.event IN ('click') AND NOT (
+      WHEN COUNT(CASE WHEN e.event = 'click' AND NOT (
         e.ts >= f.first_ts
       ) THEN 1 END) = 0
       THEN 0
-      WHEN COUNT(CASE WHEN e.event IN ('back') AND NOT (
+      WHEN COUNT(CASE WHEN e.event = 'back' AND NOT (
         e.ts >= f.first_ts
       ) THEN 1 END) = 0
       THEN 1
       WHEN SIZE(
         FILTER(
           COLLECT_LIST(UNIX_MILLIS(e.ts)) FILTER(WHERE
-            e.event IN ('click') AND NOT (
+            e.event = 'click' AND NOT (
               e.ts >= f.first_ts
             )),
           c -> SIZE(
             FILTER(
               COLLECT_LIST(UNIX_MILLIS(e.ts)) FILTER(WHERE
-                e.event IN ('back') AND NOT (
+                e.event = 'back' AND NOT (
                   e.ts >= f.first_ts
                 )),
               b -> b > c AND b <= (
@@ -281,37 +273,34 @@ WITH first_exposure AS (
     END AS spre_session_success,
     SUM(
       CASE
-        WHEN e.event IN ('purchase') AND e.ts >= f.first_ts
+        WHEN e.event = 'purchase' AND e.ts >= f.first_ts
         THEN CAST(e.value AS DECIMAL(28, 10))
       END
     ) AS s_revenue_winsorised,
-    COUNT(
+    COUNT(CASE WHEN e.event = 'purchase' AND e.ts >= f.first_ts THEN e.value END) - COUNT(
       CASE
-        WHEN (
-          e.event IN ('purchase') AND e.ts >= f.first_ts
-        )
-        AND NOT (
-          e.value
-        ) IS NULL
-        AND CAST(e.value AS DECIMAL(28, 10)) IS NULL
-        THEN 1
+        WHEN e.event = 'purchase' AND e.ts >= f.first_ts
+        THEN CAST(e.value AS DECIMAL(28, 10))
       END
     ) AS dq_ignored_revenue_winsorised,
     COUNT(
       CASE
         WHEN (
-          e.event IN ('purchase') AND e.ts >= f.first_ts
+          e.event = 'purchase' AND e.ts >= f.first_ts
         )
-        AND NOT CAST(e.value AS DECIMAL(28, 10)) IS NULL
         AND (
           e.value
         ) < 0
+        AND NOT CASE
+          WHEN e.event = 'purchase' AND e.ts >= f.first_ts
+          THEN CAST(e.value AS DECIMAL(28, 10))
+        END IS NULL
         THEN 1
       END
     ) AS dq_negative_revenue_winsorised,
     SUM(
       CASE
-        WHEN e.event IN ('purchase') AND NOT (
+        WHEN e.event = 'purchase' AND NOT (
           e.ts >= f.first_ts
         )
         THEN CAST(e.value AS DECIMAL(28, 10))
