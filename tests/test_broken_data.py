@@ -370,6 +370,19 @@ def test_negative_revenue_is_kept_and_counted(tmp_path: Path) -> None:
     assert revenue["control_value"] < before["control_value"]  # u001 is in control
 
 
+def test_ignored_and_negative_values_are_told_apart_within_one_session(tmp_path: Path) -> None:
+    # The data-quality definition (compile/quality.py): a value is ignored when it is NULL-free
+    # but not finite or too large; negative counts only values that were used. So -inf and
+    # -1e300 are ignored, not negative; -1e-11 is used (it rounds to 0 at ten decimals) and,
+    # being below zero, negative; a NULL value is neither.
+    mix = [math.nan, -math.inf, -1e300, -10.0, -1e-11, None, 1e17, 3.0]
+    extra = [event("u001", "purchase", 6 + i, value=v) for i, v in enumerate(mix)]
+    extra += [event("u001", "page_load", 6 + i, latency_ms=v) for i, v in enumerate(mix)]
+    card = _revenue_card(tmp_path, extra)
+    expected = {"ignored": 3, "negative": 2}
+    assert quality(card)["values"] == {"revenue": expected, "page_latency": expected}
+
+
 def test_empty_file_among_others_is_counted(tmp_path: Path, baseline: dict[str, Any]) -> None:
     events, exposures = logs()
     write_case(tmp_path, events, exposures, diagnostics=DIAGNOSTICS)
