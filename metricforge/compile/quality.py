@@ -52,22 +52,24 @@ def exact(value: exp.Expr) -> exp.Expr:
     return exp.TryCast(this=value.copy(), to=EXACT.copy())
 
 
-def value_checks(cond: exp.Expr, value: exp.Expr, metric: MetricDef) -> list[tuple[str, exp.Expr]]:
+def value_checks(
+    cond: exp.Expr, value: exp.Expr, used: exp.Expr, metric: MetricDef
+) -> list[tuple[str, exp.Expr]]:
     """Session-level counts of ignored and negative values: (column, aggregate).
 
-    Both are written around the metric's own ``CASE WHEN cond THEN exact(value) END``,
-    the expression its sum already aggregates, so the engine converts each value once
-    (DuckDB shares identical expressions): ignored = matching non-NULL values minus the
-    used ones; negative = used values below zero, the cheap comparison tested first.
+    ``used`` is the metric's own ``CASE WHEN cond THEN exact(value) END``, the expression
+    its sum aggregates; both counts are written around it, so the engine converts each
+    value once (DuckDB shares identical expressions): ignored = matching non-NULL values
+    minus the used ones; negative = used values below zero, the cheap comparison first.
     """
-    used_value = case(cond, exact(value))
-    raw_value = case(cond, value)
-    ignored = exp.Sub(this=exp.Count(this=raw_value), expression=exp.Count(this=used_value.copy()))
+    ignored = exp.Sub(
+        this=exp.Count(this=case(cond, value)), expression=exp.Count(this=used.copy())
+    )
     negative = case(
         exp.and_(
             cond.copy(),
             exp.paren(value.copy()) < exp.Literal.number(0),
-            used_value.copy().is_(exp.null()).not_(),
+            used.copy().is_(exp.null()).not_(),
         ),
         exp.Literal.number(1),
     )

@@ -151,7 +151,9 @@ def _session_parts(
         if metric.kind is Kind.MEAN:
             parts.append(exp.alias_(exp.Count(this=value.copy()), f"c{period}_{metric.name}"))
         if not period:
-            parts += [exp.alias_(count, name) for name, count in value_checks(cond, raw, metric)]
+            parts += [
+                exp.alias_(count, name) for name, count in value_checks(cond, raw, value, metric)
+            ]
         return parts
     if metric.kind is Kind.DWELL_SUCCESS:
         return [exp.alias_(_dwell_success(metric, e, period_cond), s)]

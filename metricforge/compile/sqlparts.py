@@ -33,8 +33,7 @@ def timestamp(value: dt.datetime) -> exp.Expr:
 
 def one_of(column: exp.Expr, values: list[str]) -> exp.Expr:
     """``column = v`` for one value, ``column IN (...)`` for several: DuckDB evaluates a
-    one-element IN list more slowly than the equality (about 10% of a run's scan at 100M
-    events, bench/RESULTS.md)."""
+    one-element IN list more slowly than the equality (bench/RESULTS.md)."""
     if len(values) == 1:
         return exp.EQ(this=column, expression=lit(values[0]))
     return column.isin(*[lit(v) for v in values])
